@@ -1,0 +1,522 @@
+"""Bringing data in: reading and checking files, time handling, uniform grids, splitting.
+
+A data file (CSV or Parquet) is read through the store's DuckDB reader, checked (every
+refusal names the file, the row and column and the value seen), its time converted to
+seconds, put on a uniform grid when the samples are irregular, and cut into one
+:class:`TestWindow` per input move. :func:`import_sources` stores each file whole or not
+at all, skips files whose content is already stored, and returns a summary.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import re
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .campaign import Campaign, TestEntry, load_campaign
+from .errors import CampaignFileError, DataError, MapperError
+from .store import Store, scan_file, scan_first_text
+
+MIN_SAMPLES = 20
+MAX_MAGNITUDE = 1e12
+_NUMERIC_TYPES = ("DOUBLE", "FLOAT", "BIGINT", "INTEGER", "SMALLINT", "TINYINT", "HUGEINT",
+                  "UBIGINT", "UINTEGER", "USMALLINT", "UTINYINT", "DECIMAL", "REAL")
+_ZONE = re.compile(r"(Z|[+-]\d\d:?\d\d)$")
+_DECIMAL_COMMA = re.compile(r"^\s*[-+]?\d*,\d+([eE][-+]?\d+)?\s*$")
+
+
+@dataclass(frozen=True)
+class Signals:
+    """Time (s from the first sample), input and output of one file, checked."""
+
+    t: np.ndarray
+    u: np.ndarray
+    y: np.ndarray
+    start_time: str | None = None
+    time_zone: str | None = None
+    flags: tuple[str, ...] = ()
+
+
+@dataclass(frozen=True)
+class TestWindow:
+    """One test ready to store: a window of a file on a uniform time grid."""
+
+    file: str
+    source_path: Path
+    source_hash: str
+    window_index: int
+    window_start: float
+    window_end: float
+    t: np.ndarray
+    u: np.ndarray
+    y: np.ndarray
+    period: float
+    input_step: float
+    direction: str
+    level_estimate: float
+    level_given: float | None = None
+    note: str = ""
+    start_time: str | None = None
+    time_zone: str | None = None
+    flags: tuple[str, ...] = ()
+
+
+@dataclass
+class FileOutcome:
+    file: str
+    status: str  # "imported", "already stored" or "refused"
+    tests: int = 0
+    message: str = ""
+
+
+@dataclass
+class ImportSummary:
+    """What an import did, file by file."""
+
+    outcomes: list[FileOutcome] = field(default_factory=list)
+
+    def count(self, status: str) -> int:
+        return sum(1 for o in self.outcomes if o.status == status)
+
+    @property
+    def tests_imported(self) -> int:
+        return sum(o.tests for o in self.outcomes if o.status == "imported")
+
+    @property
+    def ok(self) -> bool:
+        return self.count("refused") == 0
+
+    def lines(self) -> list[str]:
+        text = [f"imported {self.count('imported')} file(s) as {self.tests_imported} test(s); "
+                f"already stored {self.count('already stored')}; refused {self.count('refused')}"]
+        for o in self.outcomes:
+            if o.status == "imported" and o.tests > 1:
+                text.append(f"  {o.file}: {o.tests} input moves, one test each")
+            if o.status == "refused":
+                text.append(f"  refused {o.message}")
+        return text
+
+
+# -- reading ------------------------------------------------------------------------------
+def file_hash(path: Path, settings: dict) -> str:
+    """Content hash of a file together with the settings that shape its tests."""
+    digest = hashlib.sha256()
+    with path.open("rb") as handle:
+        for chunk in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(chunk)
+    digest.update(json.dumps(settings, sort_keys=True).encode())
+    return digest.hexdigest()
+
+
+def _line(index: int, offset: int) -> int:
+    # data row `index` (0-based) sits on file line index + 2 (header on line 1)
+    return index + 2 + offset
+
+
+def _to_number(path: Path, column: str, text: np.ndarray, offset: int, decimal_comma: bool) -> np.ndarray:
+    series = pd.Series(text, dtype=object)
+    empty = series.isna() | (series.astype(str).str.strip() == "")
+    if empty.any():
+        i = int(np.flatnonzero(empty.to_numpy())[0])
+        raise DataError(f"{path}: empty cell in column '{column}' at line {_line(i, offset)}",
+                        hint="fill or remove the incomplete rows; gaps in a log must not be blank cells")
+    cleaned = series.astype(str).str.strip()
+    if decimal_comma:
+        cleaned = cleaned.str.replace(",", ".", regex=False)
+    numbers = pd.to_numeric(cleaned, errors="coerce")
+    bad = numbers.isna().to_numpy()
+    if bad.any():
+        i = int(np.flatnonzero(bad)[0])
+        raise DataError(
+            f"{path}: text '{series.iloc[i]}' in numeric column '{column}' at line {_line(i, offset)}",
+            hint="the column must hold numbers only; remove comments or status words from the data")
+    return numbers.to_numpy(dtype=float)
+
+
+def _check_finite(path: Path, column: str, values: np.ndarray, offset: int) -> None:
+    bad = ~np.isfinite(values)
+    if bad.any():
+        i = int(np.flatnonzero(bad)[0])
+        raise DataError(f"{path}: non-finite value {values[i]} in column '{column}' at line "
+                        f"{_line(i, offset)}", hint="remove the rows where the logger wrote NaN or inf")
+    huge = np.abs(values) > MAX_MAGNITUDE
+    if huge.any():
+        i = int(np.flatnonzero(huge)[0])
+        raise DataError(f"{path}: implausible value {values[i]:g} in column '{column}' at line "
+                        f"{_line(i, offset)}", hint="check the column; values beyond 1e12 are refused")
+
+
+def _parse_time(path: Path, column: str, raw: np.ndarray, kind: str, seconds_per_unit: float,
+                offset: int, decimal_comma: bool = False) -> tuple[np.ndarray, str | None, str | None]:
+    """Seconds from the first sample, the first timestamp as text, and its zone."""
+    if kind.startswith("TIMESTAMP") or np.issubdtype(np.asarray(raw).dtype, np.datetime64):
+        stamps = pd.to_datetime(pd.Series(raw), utc=("TIME ZONE" in kind))
+        if stamps.isna().any():
+            i = int(np.flatnonzero(stamps.isna().to_numpy())[0])
+            raise DataError(f"{path}: empty timestamp in column '{column}' at line {_line(i, offset)}")
+    elif any(kind.startswith(t) for t in _NUMERIC_TYPES):
+        values = np.ma.filled(np.ma.asarray(raw, dtype=float), np.nan)
+        _check_finite(path, column, values, offset)
+        return (values - values[0]) * seconds_per_unit, None, None
+    else:  # text: numbers written oddly, or ISO-8601 timestamps
+        text = pd.Series(raw, dtype=object).astype(str).str.strip()
+        numbers = pd.to_numeric(text.str.replace(",", ".", regex=False) if decimal_comma else text,
+                                errors="coerce")
+        if not numbers.isna().any():
+            values = numbers.to_numpy(dtype=float)
+            _check_finite(path, column, values, offset)
+            return (values - values[0]) * seconds_per_unit, None, None
+        zoned = text.str.contains(_ZONE)
+        try:
+            stamps = pd.to_datetime(text, format="ISO8601", utc=bool(zoned.any()), errors="coerce")
+        except (ValueError, TypeError):
+            stamps = pd.Series(pd.NaT, index=text.index)
+        if stamps.isna().any():
+            i = int(np.flatnonzero(stamps.isna().to_numpy())[0])
+            raise DataError(
+                f"{path}: cannot read time '{text.iloc[i]}' in column '{column}' at line {_line(i, offset)}",
+                hint="use ISO-8601 timestamps (2026-03-04T10:15:00, optionally with +01:00 or Z) "
+                     "or numeric time in seconds")
+    ns = stamps.dt.tz_convert("UTC").dt.tz_localize(None) if stamps.dt.tz is not None else stamps
+    ns = ns.to_numpy(dtype="datetime64[ns]").astype(np.int64)
+    seconds = (ns - ns[0]) / 1e9
+    first = stamps.iloc[0]
+    return seconds, first.isoformat(), (str(first.tzinfo) if first.tzinfo is not None else None)
+
+
+def read_signals(path: Path, time_column: str, input_column: str, output_column: str,
+                 seconds_per_unit: float = 1.0) -> Signals:
+    """Read and check the three signals of a data file.
+
+    Common export quirks are read, not refused: a semicolon delimiter with decimal commas,
+    a byte-order mark, Windows line endings, and a units row under the header (recognised
+    when the first data row holds text in the input or output column and every later row
+    holds numbers there).
+
+    Raises
+    ------
+    DataError
+        Naming the file, the line and column, and the value seen.
+    """
+    if not path.is_file():
+        raise DataError(f"{path}: file not found", hint="check the path")
+    if path.stat().st_size == 0:
+        raise DataError(f"{path}: the file is empty", hint="export the test again")
+    columns = (time_column, input_column, output_column)
+    scanned = scan_file(path, columns)
+    kinds = {c: scanned.types[c].upper() for c in columns}
+    flags: list[str] = []
+    offset = 0
+    numeric = all(any(kinds[c].startswith(t) for t in _NUMERIC_TYPES) for c in (input_column, output_column))
+    masked = any(np.ma.is_masked(scanned.values[c]) for c in columns)
+    if numeric and not masked:
+        u = np.asarray(scanned.values[input_column], dtype=float)
+        y = np.asarray(scanned.values[output_column], dtype=float)
+        raw_time = scanned.values[time_column]
+        decimal_comma = False
+    else:
+        text = scan_file(path, columns, as_text=True)
+        values = {c: np.asarray(text.values[c], dtype=object) for c in columns}
+        n = len(values[input_column])
+        if n == 0:
+            raise DataError(f"{path}: header only, no data rows", hint="export the test again")
+        decimal_comma = (scanned.delimiter or ",") != "," and any(
+            bool(_DECIMAL_COMMA.match(str(values[c][min(1, n - 1)]))) for c in (input_column, output_column))
+        if n > 2 and _looks_like_units_row(values, (input_column, output_column), decimal_comma):
+            values = {c: v[1:] for c, v in values.items()}
+            offset = 1
+            flags.append("units_row_skipped")
+        u = _to_number(path, input_column, values[input_column], offset, decimal_comma)
+        y = _to_number(path, output_column, values[output_column], offset, decimal_comma)
+        raw_time = values[time_column]
+        kinds[time_column] = "VARCHAR"
+    n = len(u)
+    if n == 0:
+        raise DataError(f"{path}: header only, no data rows", hint="export the test again")
+    _check_finite(path, input_column, u, offset)
+    _check_finite(path, output_column, y, offset)
+    if np.ma.is_masked(raw_time):
+        i = int(np.flatnonzero(np.ma.getmaskarray(raw_time))[0])
+        raise DataError(f"{path}: empty cell in column '{time_column}' at line {_line(i, offset)}")
+    t, start_time, zone = _parse_time(path, time_column, np.ma.getdata(raw_time) if np.ma.isMaskedArray(raw_time) else raw_time,
+                                      kinds[time_column], seconds_per_unit, offset, decimal_comma)
+    if start_time is not None and zone is None and kinds[time_column] != "TIMESTAMP":
+        pass
+    if kinds[time_column].startswith("TIMESTAMP WITH TIME ZONE"):
+        written = scan_first_text(path, time_column)
+        match = _ZONE.search(written or "")
+        zone = match.group(1) if match else "UTC"
+    _check_time(path, time_column, t, offset)
+    if n < MIN_SAMPLES:
+        raise DataError(f"{path}: only {n} samples; at least {MIN_SAMPLES} are needed to hold a step",
+                        hint="log faster or longer around the step")
+    if np.ptp(u) == 0:
+        raise DataError(f"{path}: the input '{input_column}' never moves (constant {u[0]:g})",
+                        hint="check that the stepped variable is named as input")
+    if np.ptp(y) == 0:
+        raise DataError(f"{path}: the output '{output_column}' never changes (constant {y[0]:g})",
+                        hint="check the output column and that the logger recorded it")
+    return Signals(t=t, u=u, y=y, start_time=start_time, time_zone=zone, flags=tuple(flags))
+
+
+def _looks_like_units_row(values: dict, columns: Sequence[str], decimal_comma: bool) -> bool:
+    def numeric(text) -> bool:
+        text = str(text).strip()
+        if decimal_comma:
+            text = text.replace(",", ".")
+        try:
+            float(text)
+            return True
+        except ValueError:
+            return False
+    first = [numeric(values[c][0]) for c in columns]
+    rest = [all(numeric(v) for v in values[c][1:50]) for c in columns]
+    return not any(first) and all(rest)
+
+
+def _check_time(path: Path, column: str, t: np.ndarray, offset: int) -> None:
+    steps = np.diff(t)
+    bad = steps <= 0
+    if bad.any():
+        i = int(np.flatnonzero(bad)[0]) + 1
+        what = "repeats" if steps[i - 1] == 0 else "goes backwards"
+        raise DataError(
+            f"{path}: time {what} in column '{column}' at line {_line(i, offset)} "
+            f"({t[i - 1]:g} s then {t[i]:g} s from the start)",
+            hint="sort the rows by time and remove duplicated samples")
+
+
+# -- grids and splitting ------------------------------------------------------------------
+def uniform_grid(t: np.ndarray, u: np.ndarray, y: np.ndarray, period: float | None = None):
+    """Put irregular samples on a uniform grid.
+
+    The input is held between its recorded changes (a logged set-point or valve demand
+    stays until the next record); the output is interpolated linearly. Gaps much longer
+    than the grid (more than five periods) are flagged as compression.
+
+    Returns
+    -------
+    t, u, y, period, flags
+    """
+    steps = np.diff(t)
+    median = float(np.median(steps))
+    period = float(period) if period else median
+    flags: list[str] = []
+    regular = np.allclose(steps, period, rtol=0.01, atol=0)
+    if regular:
+        return t, u, y, period, flags
+    grid = np.arange(0.0, t[-1] + 0.5 * period, period)
+    grid = grid[grid <= t[-1] + 1e-9 * period]
+    held = np.searchsorted(t, grid, side="right") - 1
+    u_grid = u[np.clip(held, 0, len(u) - 1)]
+    y_grid = np.interp(grid, t, y)
+    flags.append("resampled_to_uniform_grid")
+    if (steps > 5 * period).any():
+        flags.append("compressed_gaps")
+    return grid, u_grid, y_grid, period, flags
+
+
+def _noise(values: np.ndarray) -> float:
+    diffs = np.diff(values)
+    return float(1.4826 * np.median(np.abs(diffs - np.median(diffs))) / np.sqrt(2))
+
+
+def find_moves(u: np.ndarray) -> list[tuple[int, int]]:
+    """Index pairs (start, end) of each distinct input move.
+
+    A move is a change of the held input level by more than a threshold set from the
+    input's own sample-to-sample noise (eight robust standard deviations) and 2 % of its
+    range, so noise on a flat input never makes a move. Short actuator ramps are one move;
+    pieces of one ramp in the same direction with no plateau between are merged.
+    """
+    span = float(np.ptp(u))
+    if span == 0:
+        return []
+    threshold = max(8 * _noise(u), 0.02 * span, 1e-12 * max(1.0, float(np.max(np.abs(u)))))
+    moves: list[tuple[int, int, float]] = []
+    reference = float(np.median(u[: min(5, len(u))]))
+    k = 1
+    n = len(u)
+    while k < n:
+        if abs(u[k] - reference) > threshold:
+            start = k - 1
+            end = k
+            # the move lasts while the input keeps travelling in the same direction
+            sign = np.sign(u[k] - reference)
+            while end + 1 < n and sign * (u[end + 1] - u[end]) > threshold / 4:
+                end += 1
+            settled = u[end: min(end + 5, n)]
+            new_reference = float(np.median(settled))
+            if moves and moves[-1][1] >= start - 2 and np.sign(moves[-1][2]) == sign:
+                previous = moves.pop()
+                start = previous[0]
+            moves.append((start, end, float(sign)))
+            reference = new_reference
+            k = end + 1
+        else:
+            k += 1
+    return [(s, e) for s, e, _ in moves]
+
+
+def _settled_at_end(y: np.ndarray, response: float) -> bool:
+    tail = y[int(0.75 * len(y)):]
+    if len(tail) < 4:
+        return False
+    x = np.arange(len(tail))
+    slope = np.polyfit(x, tail, 1)[0]
+    drift = abs(slope) * len(tail)
+    return drift <= max(3 * _noise(y), 0.05 * abs(response))
+
+
+def split_signals(signals: Signals, *, windows: Sequence[tuple[float, float]] = (),
+                  seconds_per_unit: float = 1.0, period: float | None = None) -> list[dict]:
+    """Cut a file's signals into test windows (one per input move).
+
+    Each automatic window runs from the last half of the settled stretch before its move
+    to the start of the next move. A move followed by another before the output settled
+    still becomes a test, flagged ``next_move_before_settled``. Explicit ``windows``
+    (start, end in the file's time unit, counted from its first sample) override the split.
+    """
+    t, u, y, grid_period, grid_flags = uniform_grid(signals.t, signals.u, signals.y, period)
+    pieces: list[tuple[int, int, list[str]]] = []
+    if windows:
+        for start, end in windows:
+            lo = int(np.searchsorted(t, start * seconds_per_unit, side="left"))
+            hi = int(np.searchsorted(t, end * seconds_per_unit, side="right"))
+            pieces.append((lo, hi, ["explicit_window"]))
+    else:
+        moves = find_moves(u)
+        if not moves:
+            raise DataError("the input holds no move larger than its noise",
+                            hint="check the input column; a step test needs a clear input step")
+        plateaus = [moves[i + 1][0] - moves[i][1] for i in range(len(moves) - 1)]
+        long_enough = all(p >= max(MIN_SAMPLES, 0.05 * len(t)) for p in plateaus)
+        if len(moves) == 1 or not long_enough:
+            flags = ["several_input_moves"] if len(moves) > 1 else []
+            pieces.append((0, len(t), flags))
+        else:
+            for i, (start, end) in enumerate(moves):
+                before = 0 if i == 0 else moves[i - 1][1] + 1
+                lo = start - max((start - before) // 2, min(MIN_SAMPLES // 2, start - before)) if i else 0
+                hi = moves[i + 1][0] if i + 1 < len(moves) else len(t)
+                flags = []
+                response = np.median(y[max(hi - 5, lo):hi]) - np.median(y[lo:start + 1])
+                if i + 1 < len(moves) and not _settled_at_end(y[lo:hi], response):
+                    flags.append("next_move_before_settled")
+                pieces.append((lo, hi, flags))
+    result = []
+    for lo, hi, flags in pieces:
+        if hi - lo < MIN_SAMPLES:
+            raise DataError(f"a test window holds only {hi - lo} samples (from {t[lo] if lo < len(t) else t[-1]:g} s)",
+                            hint=f"give windows of at least {MIN_SAMPLES} samples")
+        wt, wu, wy = t[lo:hi], u[lo:hi], y[lo:hi]
+        edge = max(3, len(wt) // 10)
+        step = float(np.median(wu[-edge:]) - np.median(wu[:edge]))
+        if step == 0:
+            step = float(wu[np.argmax(np.abs(wu - wu[0]))] - wu[0])
+        result.append(dict(
+            t=wt - wt[0], u=wu, y=wy, period=grid_period, window_start=float(wt[0]),
+            window_end=float(wt[-1]), input_step=step, direction="up" if step > 0 else "down",
+            level_estimate=float((np.median(wy[:edge]) + np.median(wy[-edge:])) / 2),
+            flags=tuple(signals.flags) + tuple(grid_flags) + tuple(flags)))
+    return result
+
+
+# -- import -------------------------------------------------------------------------------
+def windows_for_file(entry: TestEntry, campaign: Campaign, source_hash: str) -> list[TestWindow]:
+    """Read, check and cut one file of a campaign. Raises DataError on bad input."""
+    signals = read_signals(entry.path, campaign.time_column, campaign.input_column,
+                           campaign.output_column, campaign.seconds_per_time_unit)
+    try:
+        pieces = split_signals(signals, windows=entry.windows,
+                               seconds_per_unit=campaign.seconds_per_time_unit, period=campaign.period)
+    except DataError as exc:
+        raise DataError(f"{entry.path}: {exc.args[0]}", hint=exc.hint) from None
+    single = len(pieces) == 1
+    return [TestWindow(file=entry.file, source_path=entry.path, source_hash=source_hash,
+                       window_index=i, note=entry.note, start_time=signals.start_time,
+                       time_zone=signals.time_zone,
+                       level_given=entry.level if single else None, **piece)
+            for i, piece in enumerate(pieces)]
+
+
+def _hash_settings(campaign: Campaign, entry: TestEntry) -> dict:
+    return {"columns": [campaign.time_column, campaign.input_column, campaign.output_column],
+            "time_unit": campaign.time_unit, "windows": [list(w) for w in entry.windows],
+            "period": campaign.period, "campaign": campaign.name}
+
+
+def import_campaign(store: Store, campaign: Campaign,
+                    progress: Callable[[int, int, str], None] | None = None) -> ImportSummary:
+    """Import every file of ``campaign`` into ``store``; one transaction per file.
+
+    A file whose content (and settings) is already stored is skipped; a refused file does
+    not stop the others and leaves the store as it was.
+    """
+    summary = ImportSummary()
+    total = len(campaign.tests)
+    for number, entry in enumerate(campaign.tests, start=1):
+        if progress:
+            progress(number, total, entry.file)
+        try:
+            source_hash = file_hash(entry.path, _hash_settings(campaign, entry))
+            if store.has_source(source_hash):
+                summary.outcomes.append(FileOutcome(entry.file, "already stored"))
+                continue
+            windows = windows_for_file(entry, campaign, source_hash)
+            store.add_tests(campaign, windows)
+            summary.outcomes.append(FileOutcome(entry.file, "imported", tests=len(windows)))
+        except DataError as exc:
+            summary.outcomes.append(FileOutcome(entry.file, "refused", message=str(exc)))
+    return summary
+
+
+def campaign_from_options(files: Sequence[str | Path], *, time_column: str, input_column: str,
+                          output_column: str, level: float | None = None,
+                          campaign: str | None = None, time_unit: str = "s",
+                          period: float | None = None) -> Campaign:
+    """A campaign made of loose files named on the command line."""
+    entries = []
+    for name in files:
+        path = Path(name)
+        if not path.is_file():
+            raise DataError(f"{path}: file not found", hint="check the path")
+        entries.append(TestEntry(path=path.resolve(), file=path.name, level=level))
+    return Campaign(name=campaign or "loose files", folder=None, time_column=time_column,
+                    input_column=input_column, output_column=output_column, time_unit=time_unit,
+                    period=period, tests=tuple(entries))
+
+
+def import_sources(store: Store, sources: Sequence[str | Path], *, time_column: str | None = None,
+                   input_column: str | None = None, output_column: str | None = None,
+                   level: float | None = None, campaign: str | None = None,
+                   time_unit: str = "s", period: float | None = None,
+                   progress: Callable[[int, int, str], None] | None = None) -> ImportSummary:
+    """Import campaign folders and/or loose data files.
+
+    Folders must hold a ``campaign.toml``; loose files need the three column names.
+    Campaign-file errors are raised before anything is stored.
+    """
+    folders = [Path(s) for s in sources if Path(s).is_dir() or Path(s).name == "campaign.toml"]
+    files = [s for s in sources if Path(s) not in folders]
+    campaigns = [load_campaign(folder) for folder in folders]
+    if files:
+        if not (time_column and input_column and output_column):
+            raise MapperError(
+                f"{files[0]}: loose data files need --time, --input and --output column names",
+                hint="or import a campaign folder holding a campaign.toml")
+        campaigns.append(campaign_from_options(
+            files, time_column=time_column, input_column=input_column, output_column=output_column,
+            level=level, campaign=campaign, time_unit=time_unit, period=period))
+    if not campaigns:
+        raise CampaignFileError("nothing to import", hint="name a campaign folder or data files")
+    summary = ImportSummary()
+    for item in campaigns:
+        summary.outcomes.extend(import_campaign(store, item, progress).outcomes)
+    return summary

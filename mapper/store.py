@@ -1,0 +1,498 @@
+"""The store: one DuckDB file holding campaigns, tests, samples and fits.
+
+This is the only module that imports duckdb. It owns the schema (documented in
+``docs/store.md``), opening and locking, reading data files through DuckDB's own CSV
+and Parquet readers, atomic writes (a test or a fit is stored whole or not at all),
+and the public view ``test_params`` that anyone can query with the plain duckdb client.
+Every statement binds its values as parameters; no user text is formatted into SQL.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import time
+from collections.abc import Iterable, Iterator, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass
+from pathlib import Path
+
+import duckdb
+import numpy as np
+import pandas as pd
+
+from . import __version__
+from .errors import DataError, NotAStoreError, NotFoundError, StoreError, StoreInUseError
+
+SCHEMA_VERSION = 1
+DEFAULT_STORE = "mapper.duckdb"
+STORE_ENV = "MAPPER_DB"
+LOCK_WAIT_ENV = "MAPPER_LOCK_WAIT"
+_DUCKDB_MAGIC = b"DUCK"
+
+PARAM_COLUMNS = (
+    "test_id", "campaign", "file", "level", "direction", "input_step", "model",
+    "gain", "gain_lo", "gain_hi", "time_constant", "time_constant_lo", "time_constant_hi",
+    "dead_time", "dead_time_lo", "dead_time_hi", "nrmse", "quality", "flags",
+)
+FIT_VALUE_COLUMNS = (
+    "method", "model", "gain", "gain_lo", "gain_hi", "time_constant", "time_constant_lo",
+    "time_constant_hi", "dead_time", "dead_time_lo", "dead_time_hi", "nrmse", "quality",
+    "input_step", "step_time", "y_before", "y_after",
+)
+
+_SCHEMA = [
+    """CREATE TABLE IF NOT EXISTS mapper_meta (key VARCHAR PRIMARY KEY, value VARCHAR)""",
+    """CREATE SEQUENCE IF NOT EXISTS campaign_ids START 1""",
+    """CREATE SEQUENCE IF NOT EXISTS test_ids START 1""",
+    """CREATE TABLE IF NOT EXISTS campaigns (
+        campaign_id INTEGER PRIMARY KEY DEFAULT nextval('campaign_ids'),
+        name VARCHAR NOT NULL UNIQUE,
+        folder VARCHAR,
+        description VARCHAR,
+        time_unit VARCHAR,
+        input_unit VARCHAR,
+        output_unit VARCHAR,
+        input_range_low DOUBLE, input_range_high DOUBLE,
+        output_range_low DOUBLE, output_range_high DOUBLE,
+        created_at TIMESTAMP DEFAULT current_timestamp)""",
+    """CREATE TABLE IF NOT EXISTS tests (
+        test_id INTEGER PRIMARY KEY DEFAULT nextval('test_ids'),
+        campaign_id INTEGER NOT NULL REFERENCES campaigns (campaign_id),
+        file VARCHAR NOT NULL,
+        source_path VARCHAR,
+        source_hash VARCHAR NOT NULL,
+        window_index INTEGER NOT NULL,
+        window_start DOUBLE, window_end DOUBLE,
+        start_time VARCHAR,
+        time_zone VARCHAR,
+        period DOUBLE NOT NULL,
+        n_samples INTEGER NOT NULL,
+        level_given DOUBLE,
+        level_estimate DOUBLE,
+        direction VARCHAR,
+        input_step DOUBLE,
+        note VARCHAR,
+        import_flags VARCHAR[],
+        imported_at TIMESTAMP DEFAULT current_timestamp,
+        UNIQUE (source_hash, window_index))""",
+    """CREATE TABLE IF NOT EXISTS samples (
+        test_id INTEGER NOT NULL,
+        sample_index INTEGER NOT NULL,
+        t DOUBLE NOT NULL,
+        u DOUBLE NOT NULL,
+        y DOUBLE NOT NULL)""",
+    """CREATE TABLE IF NOT EXISTS fits (
+        test_id INTEGER PRIMARY KEY,
+        method VARCHAR, model VARCHAR,
+        gain DOUBLE, gain_lo DOUBLE, gain_hi DOUBLE,
+        time_constant DOUBLE, time_constant_lo DOUBLE, time_constant_hi DOUBLE,
+        dead_time DOUBLE, dead_time_lo DOUBLE, dead_time_hi DOUBLE,
+        nrmse DOUBLE, quality VARCHAR, flags VARCHAR[], notes VARCHAR[],
+        input_step DOUBLE, step_time DOUBLE, y_before DOUBLE, y_after DOUBLE,
+        settings VARCHAR, tool_version VARCHAR,
+        fitted_at TIMESTAMP DEFAULT current_timestamp)""",
+    """CREATE OR REPLACE VIEW test_params AS
+        SELECT t.test_id, c.name AS campaign, t.file,
+               coalesce(t.level_given, (f.y_before + f.y_after) / 2, t.level_estimate) AS level,
+               coalesce(CASE WHEN f.input_step > 0 THEN 'up' WHEN f.input_step < 0 THEN 'down' END,
+                        t.direction) AS direction,
+               coalesce(f.input_step, t.input_step) AS input_step,
+               f.model, f.gain, f.gain_lo, f.gain_hi,
+               f.time_constant, f.time_constant_lo, f.time_constant_hi,
+               f.dead_time, f.dead_time_lo, f.dead_time_hi, f.nrmse, f.quality,
+               list_concat(coalesce(t.import_flags, []::VARCHAR[]),
+                           coalesce(f.flags, []::VARCHAR[])) AS flags
+        FROM tests t JOIN campaigns c USING (campaign_id) LEFT JOIN fits f USING (test_id)""",
+]
+
+
+@dataclass(frozen=True)
+class ScannedFile:
+    """Columns read from a data file by DuckDB's reader, before any interpretation."""
+
+    path: Path
+    columns: tuple[str, ...]
+    types: dict[str, str]
+    values: dict[str, np.ndarray]
+    delimiter: str | None = None
+    first_time_text: str | None = None
+
+
+def default_store_path() -> Path:
+    """The store used when no ``--db`` is given: ``$MAPPER_DB`` or ``mapper.duckdb`` here."""
+    return Path(os.environ.get(STORE_ENV) or DEFAULT_STORE)
+
+
+def _is_duckdb_file(path: Path) -> bool:
+    with path.open("rb") as handle:
+        head = handle.read(16)
+    return len(head) >= 12 and head[8:12] == _DUCKDB_MAGIC
+
+
+def _connect(path: Path, read_only: bool, wait: float) -> duckdb.DuckDBPyConnection:
+    deadline = time.monotonic() + wait
+    while True:
+        try:
+            return duckdb.connect(str(path), read_only=read_only)
+        except duckdb.IOException as exc:
+            text = str(exc)
+            if "lock" not in text.lower():
+                raise StoreError(f"{path}: cannot open the store: {text.splitlines()[0]}",
+                                 hint="check the file and folder permissions") from None
+            if time.monotonic() >= deadline:
+                raise StoreInUseError(
+                    f"{path}: store in use by another mapper process (waited {wait:.0f} s)",
+                    hint="wait for the other command to finish, then run this again; "
+                         f"set {LOCK_WAIT_ENV}=SECONDS to wait longer",
+                ) from None
+            time.sleep(0.2)
+        except duckdb.Error as exc:
+            raise NotAStoreError(
+                f"{path}: not a mapper store ({str(exc).splitlines()[0]}); the file was left untouched",
+                hint="give --db a new file name or an existing mapper store",
+            ) from None
+
+
+class Store:
+    """A mapper store on disk.
+
+    Parameters
+    ----------
+    path : str or Path, optional
+        The DuckDB file; default ``$MAPPER_DB`` or ``mapper.duckdb`` in the working folder.
+    read_only : bool, default False
+        Open for reading only (several readers may share the file).
+    create : bool, default True
+        Create the store when the file does not exist (ignored when ``read_only``).
+    wait : float, optional
+        Seconds to wait for another process's lock (default ``$MAPPER_LOCK_WAIT`` or 10).
+
+    Raises
+    ------
+    NotAStoreError
+        The file exists but is not a mapper store; it is never written.
+    StoreInUseError
+        Another process holds the store after ``wait`` seconds.
+    StoreError
+        The folder does not exist, or the store was made by a newer schema.
+    """
+
+    def __init__(self, path: str | Path | None = None, *, read_only: bool = False,
+                 create: bool = True, wait: float | None = None) -> None:
+        self.path = Path(path) if path is not None else default_store_path()
+        wait = float(os.environ.get(LOCK_WAIT_ENV, "10")) if wait is None else wait
+        exists = self.path.exists()
+        if exists and self.path.is_dir():
+            raise NotAStoreError(f"{self.path}: is a folder, not a store",
+                                 hint="give --db a file name such as campaign.duckdb")
+        if not exists:
+            if not self.path.parent.exists():
+                raise StoreError(f"{self.path}: folder '{self.path.parent}' does not exist",
+                                 hint="create the folder first or choose another --db path")
+            if read_only or not create:
+                raise NotFoundError(f"{self.path}: no store here yet",
+                                    hint="run 'mapper import' first to create it")
+        elif not _is_duckdb_file(self.path):
+            raise NotAStoreError(
+                f"{self.path}: not a mapper store (not a DuckDB file); the file was left untouched",
+                hint="give --db a new file name or an existing mapper store")
+        else:
+            self._check_existing(wait)
+        self.connection = _connect(self.path, read_only, wait)
+        if not read_only:
+            self._create_schema()
+
+    def _check_existing(self, wait: float) -> None:
+        # Inspect read-only first so that a foreign DuckDB database is never written to.
+        probe = _connect(self.path, True, wait)
+        try:
+            tables = {r[0] for r in probe.execute(
+                "SELECT table_name FROM information_schema.tables").fetchall()}
+            if "mapper_meta" not in tables:
+                raise NotAStoreError(
+                    f"{self.path}: a DuckDB database but not a mapper store; it was left untouched",
+                    hint="give --db a new file name for the mapper store")
+            row = probe.execute("SELECT value FROM mapper_meta WHERE key = 'schema_version'").fetchone()
+        finally:
+            probe.close()
+        if row is None or int(row[0]) > SCHEMA_VERSION:
+            raise StoreError(f"{self.path}: store schema {row and row[0]} is newer than this "
+                             f"mapper understands ({SCHEMA_VERSION})", hint="upgrade mapper")
+
+    def _create_schema(self) -> None:
+        with self.transaction() as con:
+            for statement in _SCHEMA:
+                con.execute(statement)
+            con.execute("INSERT OR IGNORE INTO mapper_meta VALUES ('schema_version', ?), "
+                        "('created_by', ?)", [str(SCHEMA_VERSION), f"mapper {__version__}"])
+
+    # -- plumbing ---------------------------------------------------------------------
+    def close(self) -> None:
+        self.connection.close()
+
+    def __enter__(self) -> "Store":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+    @contextmanager
+    def transaction(self) -> Iterator[duckdb.DuckDBPyConnection]:
+        """All statements inside are committed together or not at all."""
+        con = self.connection
+        con.execute("BEGIN TRANSACTION")
+        try:
+            yield con
+        except BaseException:
+            con.execute("ROLLBACK")
+            raise
+        con.execute("COMMIT")
+
+    # -- campaigns and tests ------------------------------------------------------------
+    def ensure_campaign(self, con, campaign) -> int:
+        """Campaign id for ``campaign.name``, creating the row on first use."""
+        row = con.execute("SELECT campaign_id FROM campaigns WHERE name = ?", [campaign.name]).fetchone()
+        if row:
+            return int(row[0])
+        low_in, high_in = campaign.input_range or (None, None)
+        low_out, high_out = campaign.output_range or (None, None)
+        return int(con.execute(
+            "INSERT INTO campaigns (name, folder, description, time_unit, input_unit, output_unit, "
+            "input_range_low, input_range_high, output_range_low, output_range_high) "
+            "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING campaign_id",
+            [campaign.name, str(campaign.folder or ""), campaign.description, campaign.time_unit,
+             campaign.input_unit, campaign.output_unit, low_in, high_in, low_out, high_out],
+        ).fetchone()[0])
+
+    def has_source(self, source_hash: str) -> bool:
+        """True when a file with this content hash is already stored."""
+        return self.connection.execute(
+            "SELECT count(*) FROM tests WHERE source_hash = ?", [source_hash]).fetchone()[0] > 0
+
+    def add_tests(self, campaign, windows: Sequence) -> list[int]:
+        """Store the windows of one file (each becomes a test) in one transaction.
+
+        ``windows`` are :class:`mapper.ingest.TestWindow` objects. Returns the new ids.
+        """
+        ids = []
+        with self.transaction() as con:
+            campaign_id = self.ensure_campaign(con, campaign)
+            for window in windows:
+                test_id = int(con.execute(
+                    "INSERT INTO tests (campaign_id, file, source_path, source_hash, window_index, "
+                    "window_start, window_end, start_time, time_zone, period, n_samples, "
+                    "level_given, level_estimate, direction, input_step, note, import_flags) "
+                    "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING test_id",
+                    [campaign_id, window.file, str(window.source_path), window.source_hash,
+                     window.window_index, window.window_start, window.window_end, window.start_time,
+                     window.time_zone, window.period, len(window.t), window.level_given,
+                     window.level_estimate, window.direction, window.input_step, window.note,
+                     list(window.flags)],
+                ).fetchone()[0])
+                frame = pd.DataFrame({
+                    "test_id": np.full(len(window.t), test_id, dtype=np.int32),
+                    "sample_index": np.arange(len(window.t), dtype=np.int32),
+                    "t": window.t, "u": window.u, "y": window.y,
+                })
+                con.register("incoming_samples", frame)
+                try:
+                    con.execute("INSERT INTO samples SELECT * FROM incoming_samples")
+                finally:
+                    con.unregister("incoming_samples")
+                ids.append(test_id)
+        return ids
+
+    def campaign_info(self, name: str | None = None) -> list[dict]:
+        """Campaign rows (all, or the one named) with units, ranges and test counts."""
+        sql = ("SELECT c.*, (SELECT count(*) FROM tests t WHERE t.campaign_id = c.campaign_id) "
+               "AS n_tests FROM campaigns c")
+        args: list = []
+        if name is not None:
+            sql += " WHERE c.name = ?"
+            args.append(name)
+        frame = self.connection.execute(sql + " ORDER BY c.campaign_id", args).df()
+        return frame.to_dict("records")
+
+    def test_ids(self, *, unfitted_only: bool = False) -> list[int]:
+        sql = "SELECT test_id FROM tests"
+        if unfitted_only:
+            sql += " WHERE test_id NOT IN (SELECT test_id FROM fits)"
+        return [int(r[0]) for r in self.connection.execute(sql + " ORDER BY test_id").fetchall()]
+
+    def test_info(self, test_id: int) -> dict:
+        frame = self.connection.execute(
+            "SELECT t.*, c.name AS campaign, c.input_range_low, c.input_range_high, "
+            "c.output_range_low, c.output_range_high, c.input_unit, c.output_unit "
+            "FROM tests t JOIN campaigns c USING (campaign_id) WHERE t.test_id = ?",
+            [test_id]).df()
+        if frame.empty:
+            raise NotFoundError(f"test {test_id} is not in the store {self.path}",
+                                hint="list the tests with 'mapper params'")
+        return frame.to_dict("records")[0]
+
+    def samples(self, test_id: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Time (s), input and output of one test, in time order."""
+        arrays = self.connection.execute(
+            "SELECT t, u, y FROM samples WHERE test_id = ? ORDER BY sample_index",
+            [test_id]).fetchnumpy()
+        if len(arrays["t"]) == 0:
+            raise NotFoundError(f"test {test_id} has no samples in {self.path}")
+        return (np.asarray(arrays["t"], float), np.asarray(arrays["u"], float),
+                np.asarray(arrays["y"], float))
+
+    def iter_samples(self, test_ids: Iterable[int]) -> Iterator[tuple[int, np.ndarray, np.ndarray, np.ndarray]]:
+        """Samples test by test, so a campaign is never held in memory at once."""
+        for test_id in test_ids:
+            yield (test_id, *self.samples(test_id))
+
+    # -- fits -----------------------------------------------------------------------------
+    def save_fits(self, rows: Sequence[dict]) -> None:
+        """Store fit rows (``FitResult.to_row()`` plus ``test_id``) in one transaction."""
+        with self.transaction() as con:
+            for row in rows:
+                values = [row.get(name) for name in FIT_VALUE_COLUMNS]
+                values = [None if isinstance(v, float) and not np.isfinite(v) else v for v in values]
+                con.execute("DELETE FROM fits WHERE test_id = ?", [row["test_id"]])
+                con.execute(
+                    "INSERT INTO fits (test_id, " + ", ".join(FIT_VALUE_COLUMNS) +
+                    ", flags, notes, settings, tool_version) VALUES (" +
+                    ", ".join(["?"] * (len(FIT_VALUE_COLUMNS) + 5)) + ")",
+                    [row["test_id"], *values, list(row.get("flags") or []),
+                     list(row.get("notes") or []),
+                     json.dumps(row.get("settings") or {}, default=str), __version__])
+
+    def clear_fits(self) -> None:
+        with self.transaction() as con:
+            con.execute("DELETE FROM fits")
+
+    def fit_details(self, test_id: int) -> dict | None:
+        frame = self.connection.execute("SELECT * FROM fits WHERE test_id = ?", [test_id]).df()
+        return None if frame.empty else frame.to_dict("records")[0]
+
+    # -- the public view ----------------------------------------------------------------
+    def params(self, *, campaign: str | None = None, level_min: float | None = None,
+               level_max: float | None = None, direction: str | None = None,
+               include_rejected: bool = True) -> pd.DataFrame:
+        """Rows of ``test_params`` with optional filters, ordered by campaign, level, id."""
+        clauses, args = [], []
+        if campaign is not None:
+            clauses.append("campaign = ?")
+            args.append(campaign)
+        if level_min is not None:
+            clauses.append("level >= ?")
+            args.append(level_min)
+        if level_max is not None:
+            clauses.append("level <= ?")
+            args.append(level_max)
+        if direction is not None:
+            clauses.append("direction = ?")
+            args.append(direction)
+        if not include_rejected:
+            clauses.append("coalesce(quality, '') <> 'rejected'")
+        where = (" WHERE " + " AND ".join(clauses)) if clauses else ""
+        frame = self.connection.execute(
+            "SELECT * FROM test_params" + where + " ORDER BY campaign, level, test_id", args).df()
+        frame["flags"] = [list(f) if f is not None else [] for f in frame["flags"]]
+        return frame
+
+    def counts(self) -> dict[str, int]:
+        con = self.connection
+        return {
+            "campaigns": con.execute("SELECT count(*) FROM campaigns").fetchone()[0],
+            "tests": con.execute("SELECT count(*) FROM tests").fetchone()[0],
+            "samples": con.execute("SELECT count(*) FROM samples").fetchone()[0],
+            "fits": con.execute("SELECT count(*) FROM fits").fetchone()[0],
+        }
+
+
+# -- reading data files through DuckDB's own readers -------------------------------------
+_reader = None
+
+
+def _reader_connection() -> duckdb.DuckDBPyConnection:
+    global _reader
+    if _reader is None:
+        _reader = duckdb.connect()
+    return _reader
+
+
+def scan_file(path: Path, columns: Sequence[str], *, as_text: bool = False,
+              decimal_comma: bool = False) -> ScannedFile:
+    """Read the named columns of a CSV or Parquet file with DuckDB's reader.
+
+    CSV delimiter, header and column types are sniffed by DuckDB. ``as_text`` reads every
+    column as text (used to locate a bad cell and to recognise common export quirks).
+
+    Raises
+    ------
+    DataError
+        The file cannot be read, holds no rows, or lacks a named column.
+    """
+    con = _reader_connection()
+    suffix = path.suffix.lower()
+    if suffix in (".parquet", ".pq"):
+        relation_sql, args = "read_parquet(?)", [str(path)]
+    else:
+        options = ", all_varchar = true" if as_text else ""
+        options += ", decimal_separator = ','" if decimal_comma else ""
+        relation_sql, args = f"read_csv(?, sample_size = -1{options})", [str(path)]
+    try:
+        described = con.execute(f"DESCRIBE SELECT * FROM {relation_sql}", args).fetchall()
+    except duckdb.Error as exc:
+        raise DataError(f"{path}: cannot be read as {'Parquet' if 'parquet' in relation_sql else 'CSV'}: "
+                        f"{str(exc).splitlines()[0]}",
+                        hint="check that the file is a CSV or Parquet export and not empty") from None
+    present = tuple(r[0] for r in described)
+    types = {r[0]: r[1] for r in described}
+    missing = [c for c in columns if c not in present]
+    if missing:
+        raise DataError(
+            f"{path}: column '{missing[0]}' not found; columns present: {', '.join(present)}",
+            hint="name the columns as they appear in the header ([columns] in campaign.toml "
+                 "or --time/--input/--output)")
+    if len(present) < 2 and not as_text:
+        raise DataError(f"{path}: only one column ('{present[0]}') was found",
+                        hint="check the delimiter; comma, semicolon and tab are recognised")
+    wanted = list(dict.fromkeys(columns))
+    column_sql = ", ".join(f'"{c}"' for c in wanted)  # names checked above against the header
+    if any('"' in c for c in wanted):
+        raise DataError(f"{path}: column names with double quotes are not supported")
+    if as_text and suffix not in (".parquet", ".pq"):
+        column_sql = ", ".join(f'"{c}"::VARCHAR' for c in wanted)
+    try:
+        result = con.execute(f"SELECT {column_sql} FROM {relation_sql}", args).fetchnumpy()
+    except duckdb.Error as exc:
+        raise DataError(f"{path}: cannot be read: {str(exc).splitlines()[0]}",
+                        hint="look for a stray line or an unquoted delimiter in the file") from None
+    values = {c: result[k] for c, k in zip(wanted, result.keys())}
+    delimiter = None
+    if suffix not in (".parquet", ".pq"):
+        try:
+            delimiter = con.execute("SELECT delimiter FROM sniff_csv(?)", [str(path)]).fetchone()[0]
+        except duckdb.Error:
+            delimiter = None
+    return ScannedFile(path=path, columns=present, types=types, values=values, delimiter=delimiter)
+
+
+def scan_first_text(path: Path, column: str) -> str | None:
+    """The first value of ``column`` as written in the file (to keep a timestamp's zone)."""
+    if path.suffix.lower() in (".parquet", ".pq"):
+        return None
+    con = _reader_connection()
+    try:
+        row = con.execute("SELECT * FROM read_csv(?, all_varchar = true) LIMIT 1", [str(path)]).df()
+    except duckdb.Error:
+        return None
+    if column not in row.columns or row.empty:
+        return None
+    return str(row[column].iloc[0])
+
+
+def bare_scan(paths: Sequence[Path]) -> int:
+    """Count the rows of every file with DuckDB's reader, storing nothing (benchmark baseline)."""
+    con = _reader_connection()
+    total = 0
+    for path in paths:
+        total += con.execute("SELECT count(*) FROM read_csv(?)", [str(path)]).fetchone()[0]
+    return total
