@@ -115,7 +115,8 @@ def _expect(value, kinds, what: str, source: Path):
 def _number(value, what: str, source: Path) -> float:
     number = float(_expect(value, (int, float), what, source))
     if not math.isfinite(number):
-        raise CampaignFileError(f"{source}: {what} must be finite, found {value!r}")
+        raise CampaignFileError(f"{source}: {what} must be finite, found {value!r}",
+                                hint=f"write {what} as an ordinary number (not nan or inf)")
     return number
 
 
@@ -128,7 +129,8 @@ def _range(value, what: str, source: Path) -> tuple[float, float]:
         )
     low, high = (_number(v, what, source) for v in value)
     if not low < high:
-        raise CampaignFileError(f"{source}: {what} must have low < high, found {value!r}")
+        raise CampaignFileError(f"{source}: {what} must have low < high, found {value!r}",
+                                hint="give the smaller number first, e.g. [0, 100]")
     return low, high
 
 
@@ -235,7 +237,8 @@ def load_campaign(folder: str | Path) -> Campaign:
     if "period" in data:
         period = _number(data["period"], "period", source)
         if period <= 0:
-            raise CampaignFileError(f"{source}: period must be positive, found {period}")
+            raise CampaignFileError(f"{source}: period must be positive, found {period}",
+                                    hint="give the grid period in seconds, e.g. period = 1.0")
 
     entries = _expect(data.get("tests", []), (list,), "[[tests]]", source)
     if not entries:

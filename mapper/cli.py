@@ -17,7 +17,7 @@ import functools
 import typer
 
 from .errors import MapperError
-from .output import format_records
+from .output import format_object, format_records, plain
 
 app = typer.Typer(add_completion=False, no_args_is_help=True, pretty_exceptions_show_locals=False,
                   pretty_exceptions_enable=False,
@@ -145,6 +145,131 @@ def params_command(
         frame = store.params(campaign=campaign, level_min=level_min, level_max=level_max,
                              direction=direction.value if direction else None)
     typer.echo(format_records(frame.to_dict("records"), format.value, kind="params"))
+
+
+@app.command("map")
+@_guard
+def map_command(
+    campaign: Optional[str] = typer.Option(None, "--campaign", help="campaign to map (default: the newest)"),
+    against: str = typer.Option("level", "--against", help="map against 'level' (output) or 'input'"),
+    format: Format = FormatOption,
+) -> None:
+    """Trend of each parameter against the operating level, its variation and significance."""
+    from .jobs import operating_map
+    data, opmap = operating_map(_state["db"], campaign=campaign, against=against)
+    if data.note and format is Format.table:
+        typer.echo(data.note)
+    typer.echo(format_records(opmap.summary(), format.value))
+
+
+@app.command("at")
+@_guard
+def at_command(
+    level: float = typer.Argument(..., help="operating level (output units)"),
+    campaign: Optional[str] = typer.Option(None, "--campaign"),
+    extrapolate: bool = typer.Option(False, "--extrapolate", help="allow a level outside the tested range (with a warning)"),
+    format: Format = FormatOption,
+) -> None:
+    """Gain, time constant and dead time at LEVEL, with the 95 % band."""
+    from .jobs import parameters_at
+    typer.echo(format_object(parameters_at(_state["db"], level, campaign=campaign, extrapolate=extrapolate),
+                             format.value))
+
+
+@app.command("verdict")
+@_guard
+def verdict_command(
+    campaign: Optional[str] = typer.Option(None, "--campaign"),
+    ms_max: float = typer.Option(2.0, "--ms-max", help="largest acceptable maximum sensitivity Ms"),
+    slowdown_max: float = typer.Option(2.0, "--slowdown-max", help="largest acceptable slowdown against local tuning"),
+    closed_loop_time: Optional[float] = typer.Option(None, "--closed-loop-time", help="SIMC tau_c in s (default: the dead time)"),
+    rule: str = typer.Option("simc", "--rule", help="local tuning rule: simc or lambda"),
+    schedule_out: Optional[Path] = typer.Option(None, "--schedule-out", help="write the schedule table as CSV"),
+    format: Format = FormatOption,
+) -> None:
+    """Single model and controller, or a gain schedule: with reasons, margins and the table."""
+    from .jobs import verdict_for
+    data, verdict = verdict_for(_state["db"], campaign=campaign, ms_max=ms_max, slowdown_max=slowdown_max,
+                                closed_loop_time=closed_loop_time, rule=rule, schedule_out=schedule_out)
+    result = verdict.to_dict()
+    if format is Format.json:
+        typer.echo(json.dumps(plain(result), indent=2))
+        return
+    if format is Format.csv:
+        typer.echo(format_records(result["schedule"], "csv"))
+        return
+    lines = [data.note] if data.note else []
+    lines += [f"decision: {result['decision']}"] + [f"  - {r}" for r in result["reasons"]]
+    lines += ["", "margins of the single controller at each tested level:",
+              format_records(result["points"], "table"), "", "schedule:",
+              format_records(result["schedule"], "table")]
+    if schedule_out is not None:
+        lines.append(f"schedule written to {schedule_out}")
+    _say(lines)
+
+
+@app.command("compare")
+@_guard
+def compare_command(
+    first: str = typer.Argument(..., help="campaign name (the older one, usually)"),
+    second: str = typer.Argument(..., help="campaign name to compare with"),
+    format: Format = FormatOption,
+) -> None:
+    """Two campaigns side by side: which parameters moved, where, and whether significantly."""
+    from .jobs import compare_two
+    rows = compare_two(_state["db"], first, second)
+    if format is Format.table:
+        _say(f"- {row['sentence']}" for row in rows)
+    else:
+        typer.echo(format_records(rows, format.value))
+
+
+@app.command("report")
+@_guard
+def report_command(
+    out: Path = typer.Option(Path("report.html"), "--out", help="HTML file to write"),
+    png_dir: Optional[Path] = typer.Option(None, "--png-dir", help="also write each chart as PNG here"),
+    campaign: Optional[str] = typer.Option(None, "--campaign"),
+    compare_with: Optional[str] = typer.Option(None, "--compare-with", help="an older campaign to compare against"),
+    ms_max: float = typer.Option(2.0, "--ms-max"),
+    slowdown_max: float = typer.Option(2.0, "--slowdown-max"),
+) -> None:
+    """Write the self-contained HTML report (opens offline)."""
+    from .jobs import write_campaign_report
+    outcome = write_campaign_report(_state["db"], out, campaign=campaign, png_dir=png_dir, ms_max=ms_max,
+                                    slowdown_max=slowdown_max, compare_with=compare_with)
+    lines = [f"report written to {outcome.path} ({outcome.size_bytes / 1e6:.2f} MB)"]
+    if outcome.png_files:
+        lines.append(f"{len(outcome.png_files)} PNG charts in {png_dir}")
+    _say(lines)
+
+
+@app.command("demo")
+@_guard
+def demo_command(
+    out: Path = typer.Option(Path("mapper_demo"), "--out", help="folder for the demo store, report and schedule"),
+    png: bool = typer.Option(True, "--png/--no-png", help="also write the charts as PNG"),
+) -> None:
+    """Run the whole job on the bundled sample campaign into a fresh folder."""
+    from .jobs import run_demo
+    _say(run_demo(out, png=png).lines)
+
+
+@app.command("bench")
+@_guard
+def bench_command(
+    tests: int = typer.Option(100, "--tests", min=2, help="tests in the synthetic campaign"),
+    samples: int = typer.Option(600, "--samples", min=50, help="samples per test"),
+    scale: int = typer.Option(10, "--scale", min=2, help="the end-to-end run is repeated at this many times the tests"),
+    json_out: Optional[Path] = typer.Option(None, "--json", help="also write the figures as JSON"),
+) -> None:
+    """Speed and memory against the plain alternatives, measured side by side in one run."""
+    from .bench import bench_lines, run_bench
+    figures = run_bench(tests=tests, samples=samples, scale=scale)
+    _say(bench_lines(figures))
+    if json_out is not None:
+        json_out.write_text(json.dumps(plain(figures), indent=2))
+        typer.echo(f"figures written to {json_out}")
 
 
 def main() -> None:

@@ -159,7 +159,8 @@ def _parse_time(path: Path, column: str, raw: np.ndarray, kind: str, seconds_per
         stamps = pd.to_datetime(pd.Series(raw), utc=("TIME ZONE" in kind))
         if stamps.isna().any():
             i = int(np.flatnonzero(stamps.isna().to_numpy())[0])
-            raise DataError(f"{path}: empty timestamp in column '{column}' at line {_line(i, offset)}")
+            raise DataError(f"{path}: empty timestamp in column '{column}' at line {_line(i, offset)}",
+                            hint="fill or remove the incomplete rows; gaps in a log must not be blank cells")
     elif any(kind.startswith(t) for t in _NUMERIC_TYPES):
         values = np.ma.filled(np.ma.asarray(raw, dtype=float), np.nan)
         _check_finite(path, column, values, offset)
@@ -219,23 +220,33 @@ def read_signals(path: Path, time_column: str, input_column: str, output_column:
         u = np.asarray(scanned.values[input_column], dtype=float)
         y = np.asarray(scanned.values[output_column], dtype=float)
         raw_time = scanned.values[time_column]
-        decimal_comma = False
+        # with another delimiter a comma in a text time column can only be a decimal comma
+        decimal_comma = (scanned.delimiter or ",") != ","
     else:
         text = scan_file(path, columns, as_text=True)
-        values = {c: np.asarray(text.values[c], dtype=object) for c in columns}
+        values = {c: _as_objects(text.values[c]) for c in columns}
         n = len(values[input_column])
         if n == 0:
             raise DataError(f"{path}: header only, no data rows", hint="export the test again")
+        # look well past the first rows: an export may start on whole numbers ("50;20")
         decimal_comma = (scanned.delimiter or ",") != "," and any(
-            bool(_DECIMAL_COMMA.match(str(values[c][min(1, n - 1)]))) for c in (input_column, output_column))
+            bool(_DECIMAL_COMMA.match(str(v))) for c in columns for v in values[c][:500])
         if n > 2 and _looks_like_units_row(values, (input_column, output_column), decimal_comma):
             values = {c: v[1:] for c, v in values.items()}
             offset = 1
             flags.append("units_row_skipped")
         u = _to_number(path, input_column, values[input_column], offset, decimal_comma)
         y = _to_number(path, output_column, values[output_column], offset, decimal_comma)
-        raw_time = values[time_column]
-        kinds[time_column] = "VARCHAR"
+        if path.suffix.lower() in (".parquet", ".pq"):  # typed columns: keep the time's own type
+            raw_time = scanned.values[time_column][offset:]
+        else:
+            raw_time = values[time_column]
+            kinds[time_column] = "VARCHAR"
+            blank = [i for i, v in enumerate(raw_time) if v is None or not str(v).strip()]
+            if blank:
+                raise DataError(f"{path}: empty cell in column '{time_column}' at line "
+                                f"{_line(blank[0], offset)}",
+                                hint="fill or remove the incomplete rows; gaps in a log must not be blank cells")
     n = len(u)
     if n == 0:
         raise DataError(f"{path}: header only, no data rows", hint="export the test again")
@@ -243,7 +254,8 @@ def read_signals(path: Path, time_column: str, input_column: str, output_column:
     _check_finite(path, output_column, y, offset)
     if np.ma.is_masked(raw_time):
         i = int(np.flatnonzero(np.ma.getmaskarray(raw_time))[0])
-        raise DataError(f"{path}: empty cell in column '{time_column}' at line {_line(i, offset)}")
+        raise DataError(f"{path}: empty cell in column '{time_column}' at line {_line(i, offset)}",
+                        hint="fill or remove the incomplete rows; gaps in a log must not be blank cells")
     t, start_time, zone = _parse_time(path, time_column, np.ma.getdata(raw_time) if np.ma.isMaskedArray(raw_time) else raw_time,
                                       kinds[time_column], seconds_per_unit, offset, decimal_comma)
     if start_time is not None and zone is None and kinds[time_column] != "TIMESTAMP":
@@ -263,6 +275,15 @@ def read_signals(path: Path, time_column: str, input_column: str, output_column:
         raise DataError(f"{path}: the output '{output_column}' never changes (constant {y[0]:g})",
                         hint="check the output column and that the logger recorded it")
     return Signals(t=t, u=u, y=y, start_time=start_time, time_zone=zone, flags=tuple(flags))
+
+
+def _as_objects(values) -> np.ndarray:
+    # a null read from a typed (Parquet) column arrives masked; keep it as None, never its
+    # placeholder value, so that it is refused as an empty cell
+    data = np.array(np.ma.getdata(values), dtype=object)
+    if np.ma.is_masked(values):
+        data[np.ma.getmaskarray(values)] = None
+    return data
 
 
 def _looks_like_units_row(values: dict, columns: Sequence[str], decimal_comma: bool) -> bool:

@@ -440,8 +440,13 @@ def scan_file(path: Path, columns: Sequence[str], *, as_text: bool = False,
     try:
         described = con.execute(f"DESCRIBE SELECT * FROM {relation_sql}", args).fetchall()
     except duckdb.Error as exc:
+        text = str(exc)
+        if "not utf-8 encoded" in text.lower():
+            where = text.splitlines()[0].split("Error: ", 1)[-1]
+            raise DataError(f"{path}: holds bytes that are not UTF-8 text ({where})",
+                            hint="save or export the file again as UTF-8 text") from None
         raise DataError(f"{path}: cannot be read as {'Parquet' if 'parquet' in relation_sql else 'CSV'}: "
-                        f"{str(exc).splitlines()[0]}",
+                        f"{text.splitlines()[0]}",
                         hint="check that the file is a CSV or Parquet export and not empty") from None
     present = tuple(r[0] for r in described)
     types = {r[0]: r[1] for r in described}
@@ -463,8 +468,9 @@ def scan_file(path: Path, columns: Sequence[str], *, as_text: bool = False,
     try:
         result = con.execute(f"SELECT {column_sql} FROM {relation_sql}", args).fetchnumpy()
     except duckdb.Error as exc:
-        raise DataError(f"{path}: cannot be read: {str(exc).splitlines()[0]}",
-                        hint="look for a stray line or an unquoted delimiter in the file") from None
+        hint = ("the Parquet file is damaged; export it again" if suffix in (".parquet", ".pq")
+                else "look for a stray line or an unquoted delimiter in the file")
+        raise DataError(f"{path}: cannot be read: {str(exc).splitlines()[0]}", hint=hint) from None
     values = {c: result[k] for c, k in zip(wanted, result.keys())}
     delimiter = None
     if suffix not in (".parquet", ".pq"):

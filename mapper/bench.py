@@ -1,0 +1,250 @@
+"""The benchmark behind ``mapper bench``: speed and memory against the plain alternatives.
+
+Everything is measured side by side in one run on one machine, and reported as ratios,
+because machines here are shared and noisy. The plain alternatives are what a
+practitioner would write without this tool: a bare DuckDB scan of the files (import),
+and a loop of pandas ``read_csv``, a step finder and scipy ``curve_fit`` of the analytic
+step response (fitting). Figures and targets are documented in ``docs/performance.md``.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import platform
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from scipy.optimize import curve_fit
+
+from .models import simulate_fopdt
+
+TOLERANCE = {"gain": 0.03, "time_constant": 0.06}  # dead time: within one sample
+
+
+@dataclass(frozen=True)
+class TruthRow:
+    file: str
+    gain: float
+    time_constant: float
+    dead_time: float
+
+
+def write_campaign(folder: Path, tests: int, samples: int, *, seed: int = 7, period: float = 1.0) -> list[TruthRow]:
+    """A seeded synthetic campaign: FOPDT tests with short actuator ramps and 2 % noise."""
+    rng = np.random.default_rng(seed)
+    folder.mkdir(parents=True, exist_ok=True)
+    truth, entries = [], []
+    t = np.arange(samples) * period
+    for i in range(tests):
+        level = float(rng.uniform(20, 80))
+        gain = 0.5 + 0.04 * level
+        time_constant = float(samples * period * rng.uniform(0.04, 0.12))
+        dead_time = float(time_constant * rng.uniform(0.05, 0.8))
+        step = float(rng.choice([-1, 1]) * rng.uniform(5, 10))
+        start = int(samples * 0.15)
+        ramp = int(rng.integers(0, 4))
+        u = np.full(samples, 50.0)
+        u[start:] = 50.0 + step
+        if ramp:
+            u[start:start + ramp] = 50.0 + step * np.arange(1, ramp + 1) / (ramp + 1)
+        y = level + simulate_fopdt(u, period, gain, time_constant, dead_time)
+        y += rng.normal(0, 0.02 * abs(gain * step), samples)
+        name = f"test_{i:05d}.csv"
+        pd.DataFrame({"t_s": t, "drive_pct": u, "reading": np.round(y, 5)}).to_csv(folder / name, index=False)
+        truth.append(TruthRow(name, gain, time_constant, dead_time))
+        entries.append(f'[[tests]]\nfile = "{name}"\nlevel = {level:.3f}\n')
+    head = ('name = "bench campaign"\n[columns]\ntime = "t_s"\ninput = "drive_pct"\n'
+            'output = "reading"\n\n')
+    (folder / "campaign.toml").write_text(head + "\n".join(entries))
+    return truth
+
+
+def _within(estimate: dict, truth: TruthRow, period: float) -> bool:
+    try:
+        return (abs(estimate["gain"] / truth.gain - 1) <= TOLERANCE["gain"]
+                and abs(estimate["time_constant"] / truth.time_constant - 1) <= TOLERANCE["time_constant"]
+                and abs(estimate["dead_time"] - truth.dead_time) <= period)
+    except (TypeError, KeyError, ZeroDivisionError):
+        return False
+
+
+def _step_curve(t, gain, time_constant, dead_time, offset, step_time, step):
+    elapsed = np.clip(t - step_time - dead_time, 0, None)
+    return offset + gain * step * (1 - np.exp(-elapsed / max(time_constant, 1e-9)))
+
+
+def plain_loop(folder: Path, truth: list[TruthRow]) -> dict:
+    """What a practitioner writes by hand: read_csv, find the step, curve_fit the analytic response."""
+    started = time.perf_counter()
+    estimates = []
+    for row in truth:
+        frame = pd.read_csv(folder / row.file)
+        t, u, y = (frame.iloc[:, k].to_numpy(float) for k in range(3))
+        moved = np.flatnonzero(np.abs(u - u[0]) > 0.5 * np.abs(u[-1] - u[0]))
+        step_time = t[moved[0]] if len(moved) else t[0]
+        step = u[-1] - u[0]
+        offset = float(np.mean(y[t < step_time])) if np.any(t < step_time) else y[0]
+        gain0 = (np.mean(y[-20:]) - offset) / step if step else 1.0
+        span = t[-1] - t[0]
+        try:
+            popt, _ = curve_fit(lambda tt, k, tau, theta, c: _step_curve(tt, k, tau, theta, c, step_time, step),
+                                t, y, p0=[gain0, span / 10, span / 50, offset], maxfev=2000)
+            estimates.append({"gain": popt[0], "time_constant": popt[1], "dead_time": popt[2]})
+        except (RuntimeError, ValueError):
+            estimates.append({})
+    seconds = time.perf_counter() - started
+    good = sum(_within(e, r, 1.0) for e, r in zip(estimates, truth))
+    return {"seconds": seconds, "per_test_ms": 1000 * seconds / len(truth), "within_tolerance": good / len(truth)}
+
+
+def _mapper_accuracy(db: Path, truth: list[TruthRow]) -> float:
+    from .store import Store
+    with Store(db, read_only=True) as store:
+        frame = store.params()
+    by_file = {r["file"]: r for r in frame.to_dict("records")}
+    return sum(_within(by_file.get(r.file, {}), r, 1.0) for r in truth) / len(truth)
+
+
+def _run_child(*args: str) -> dict:
+    """Run a stage in a fresh process; report its output and peak resident memory."""
+    started = time.perf_counter()
+    completed = subprocess.run([sys.executable, "-m", "mapper.bench", *args], capture_output=True, text=True)
+    if completed.returncode != 0:
+        raise RuntimeError(f"benchmark stage failed: {completed.stderr.strip()[-500:]}")
+    result = json.loads(completed.stdout.strip().splitlines()[-1])
+    result["wall_seconds"] = time.perf_counter() - started
+    return result
+
+
+def _stage(argv: list[str]) -> None:
+    """Child-process entry: one stage, printed as JSON with its own peak memory."""
+    from .fitting import fit_store
+    from .ingest import import_sources
+    from .store import Store
+    stage, folder, db = argv[0], Path(argv[1]), Path(argv[2])
+    timings = {}
+    if stage in ("import", "end_to_end"):
+        started = time.perf_counter()
+        with Store(db) as store:
+            import_sources(store, [folder])
+        timings["import_seconds"] = time.perf_counter() - started
+    if stage.startswith("fit") or stage == "end_to_end":
+        workers = 1 if stage == "fit_one_core" else None
+        started = time.perf_counter()
+        with Store(db) as store:
+            fit_store(store, refit=True, workers=workers if stage != "end_to_end" else None)
+        timings["fit_seconds"] = time.perf_counter() - started
+    if stage == "end_to_end":
+        from .jobs import analyse_store
+        started = time.perf_counter()
+        analyse_store(db, out_dir=db.parent / "out")
+        timings["analyse_seconds"] = time.perf_counter() - started
+    if stage == "bare_scan":
+        from .store import bare_scan
+        files = sorted(folder.glob("*.csv"))
+        started = time.perf_counter()
+        bare_scan(files)
+        timings["scan_seconds"] = time.perf_counter() - started
+    timings["peak_rss_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    print(json.dumps(timings))
+
+
+def run_bench(*, tests: int = 100, samples: int = 600, scale: int = 10, workdir: Path | None = None) -> dict:
+    """Measure import, fit and end to end against the plain alternatives; return the figures."""
+    base = Path(workdir or tempfile.mkdtemp(prefix="mapper-bench-"))
+    small, large = base / "campaign", base / "campaign_x10"
+    truth = write_campaign(small, tests, samples)
+    write_campaign(large, tests * scale, samples, seed=8)
+    db = base / "bench.duckdb"
+    scan = _run_child("bare_scan", str(small), str(db))
+    imported = _run_child("import", str(small), str(db))
+    one_core = _run_child("fit_one_core", str(small), str(db))
+    accuracy = _mapper_accuracy(db, truth)
+    all_cores = _run_child("fit_all_cores", str(small), str(db))
+    loop = plain_loop(small, truth)
+    e2e_small_db, e2e_large_db = base / "e2e" / "small.duckdb", base / "e2e_x10" / "large.duckdb"
+    e2e_small_db.parent.mkdir()
+    e2e_large_db.parent.mkdir()
+    e2e_small = _run_child("end_to_end", str(small), str(e2e_small_db))
+    e2e_large = _run_child("end_to_end", str(large), str(e2e_large_db))
+    rows = tests * samples
+    figures = {
+        "machine": {"python": platform.python_version(), "processor": platform.machine(),
+                    "cores": os.cpu_count(), "system": platform.platform()},
+        "tests": tests, "samples": samples,
+        "import": {
+            "mapper_rows_per_second": rows / imported["import_seconds"],
+            "bare_scan_rows_per_second": rows / scan["scan_seconds"],
+            "throughput_ratio": scan["scan_seconds"] / imported["import_seconds"],
+            "target": ">= 0.5",
+        },
+        "fit": {
+            "one_core_per_test_ms": 1000 * one_core["fit_seconds"] / tests,
+            "all_cores_per_test_ms": 1000 * all_cores["fit_seconds"] / tests,
+            "curve_fit_loop_per_test_ms": loop["per_test_ms"],
+            "mapper_within_tolerance": accuracy,
+            "curve_fit_within_tolerance": loop["within_tolerance"],
+            "import_plus_fit_seconds": imported["import_seconds"] + one_core["fit_seconds"],
+            "curve_fit_loop_seconds": loop["seconds"],
+            "target": "one core at least as fast per test and as accurate as the loop; all cores faster",
+        },
+        "end_to_end": {
+            "small": {"tests": tests, **e2e_small},
+            "large": {"tests": tests * scale, **e2e_large},
+            "memory_ratio": e2e_large["peak_rss_mb"] / e2e_small["peak_rss_mb"],
+            "target": "memory ratio <= 1.5 at 10x the tests",
+        },
+    }
+    imp, fit, e2e = figures["import"], figures["fit"], figures["end_to_end"]
+    figures["targets_met"] = {
+        "import_throughput": imp["throughput_ratio"] >= 0.5,
+        "fit_one_core_speed": fit["one_core_per_test_ms"] <= fit["curve_fit_loop_per_test_ms"],
+        "fit_accuracy": fit["mapper_within_tolerance"] >= fit["curve_fit_within_tolerance"],
+        "fit_all_cores_faster": fit["all_cores_per_test_ms"] < fit["one_core_per_test_ms"],
+        "import_plus_fit_faster_than_loop": fit["import_plus_fit_seconds"] < fit["curve_fit_loop_seconds"],
+        "memory_growth": e2e["memory_ratio"] <= 1.5,
+    }
+    return figures
+
+
+def bench_lines(figures: dict) -> list[str]:
+    """The benchmark figures as a table a person reads."""
+    imp, fit, e2e, met = figures["import"], figures["fit"], figures["end_to_end"], figures["targets_met"]
+
+    def mark(key: str) -> str:
+        return "met" if met[key] else "MISSED"
+    m = figures["machine"]
+    lines = [f"mapper bench: {figures['tests']} tests x {figures['samples']} samples "
+             f"({m['cores']} cores, {m['processor']}, Python {m['python']})", "",
+             f"{'measure':44} {'mapper':>12} {'plain':>12} {'ratio':>8}  target",
+             f"{'import rows/s (vs bare DuckDB scan)':44} {imp['mapper_rows_per_second']:12.0f} "
+             f"{imp['bare_scan_rows_per_second']:12.0f} {imp['throughput_ratio']:8.2f}  >= 0.5: {mark('import_throughput')}",
+             f"{'fit ms/test, one core (vs curve_fit loop)':44} {fit['one_core_per_test_ms']:12.2f} "
+             f"{fit['curve_fit_loop_per_test_ms']:12.2f} "
+             f"{fit['curve_fit_loop_per_test_ms'] / fit['one_core_per_test_ms']:8.2f}  <= loop: {mark('fit_one_core_speed')}",
+             f"{'fit ms/test, all cores':44} {fit['all_cores_per_test_ms']:12.2f} {'':>12} "
+             f"{fit['one_core_per_test_ms'] / fit['all_cores_per_test_ms']:8.2f}  < one core: {mark('fit_all_cores_faster')}",
+             f"{'share within tolerance':44} {fit['mapper_within_tolerance']:12.1%} "
+             f"{fit['curve_fit_within_tolerance']:12.1%} {'':>8}  >= loop: {mark('fit_accuracy')}",
+             f"{'import + fit s (vs loop reading the files)':44} {fit['import_plus_fit_seconds']:12.2f} "
+             f"{fit['curve_fit_loop_seconds']:12.2f} {fit['curve_fit_loop_seconds'] / fit['import_plus_fit_seconds']:8.2f}"
+             f"  faster: {mark('import_plus_fit_faster_than_loop')}", ""]
+    for key in ("small", "large"):
+        run = e2e[key]
+        lines.append(f"end to end, {run['tests']:6d} tests: import {run['import_seconds']:.2f} s, fit "
+                     f"{run['fit_seconds']:.2f} s, verdict+report {run['analyse_seconds']:.2f} s, "
+                     f"peak memory {run['peak_rss_mb']:.0f} MB")
+    lines.append(f"peak memory ratio at 10x the tests: {e2e['memory_ratio']:.2f} (<= 1.5: {mark('memory_growth')})")
+    return lines
+
+
+if __name__ == "__main__":
+    _stage(sys.argv[1:])

@@ -1,0 +1,438 @@
+"""Estimators of FOPDT and integrating models from one step test.
+
+Point methods read times off the normalised step response (graphical 63.2 %,
+two-point, area); the default least-squares estimator fits the measured input by
+output error with variable projection. Each returns a plain :class:`Estimate`;
+:mod:`mapper.identify` turns it into a :class:`~mapper.identify.FitResult`.
+Internally time is counted in samples so the numerics do not depend on the time scale.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import fft as sp_fft
+from scipy.signal import lfilter
+
+from .models import (
+    fopdt_sensitivities,
+    fopdt_unit_response,
+    integrating_unit_response,
+    split_dead_time,
+)
+from .quality import StepInfo
+
+__all__ = [
+    "Estimate",
+    "two_point_coefficients",
+    "step_shape",
+    "graphical",
+    "two_point",
+    "smith",
+    "sundaresan",
+    "area",
+    "least_squares_fopdt",
+    "least_squares_integrating",
+]
+
+
+@dataclass(frozen=True)
+class Estimate:
+    """Raw estimate in seconds; ``covariance`` over (offset, gain, tau, theta) or None."""
+
+    model: str
+    gain: float
+    time_constant: float | None
+    dead_time: float
+    offset: float
+    rss: float = float("nan")
+    at_bound: bool = False
+    converged: bool = True
+
+
+# --- point methods ---------------------------------------------------------------------
+
+
+def two_point_coefficients(p1: float, p2: float) -> tuple[float, float, float]:
+    """Exact coefficients of a two-point FOPDT method.
+
+    With ``x = -ln(1 - p)`` the FOPDT step response reaches fraction ``p`` at
+    ``t = theta + x tau``, so ``tau = c_tau (t2 - t1)`` and ``theta = c1 t1 - c2 t2``.
+
+    Returns
+    -------
+    c_tau, c1, c2 : float
+        ``1/(x2 - x1)``, ``x2/(x2 - x1)`` and ``x1/(x2 - x1)``.
+
+    Notes
+    -----
+    Smith (1972) uses 28.3 % and 63.2 % (``c_tau`` = 1.5); Sundaresan & Krishnaswamy
+    (1978) use 35.3 % and 85.3 % and publish the rounded 0.67, 1.3 and 0.29.
+    """
+    x1, x2 = -math.log1p(-p1), -math.log1p(-p2)
+    return 1.0 / (x2 - x1), x2 / (x2 - x1), x1 / (x2 - x1)
+
+
+@dataclass(frozen=True)
+class StepShape:
+    """Normalised step response ``s`` (0 before, 1 settled) from the effective step time."""
+
+    t: np.ndarray  # seconds since the effective step instant (>= first sample at/after it)
+    s: np.ndarray  # smoothed normalised response
+    raw: np.ndarray  # unsmoothed normalised response
+    y_before: float
+    y_after: float
+    noise: float  # noise sd in normalised units
+
+
+def step_shape(t: np.ndarray, y: np.ndarray, step: StepInfo, noise_sd: float) -> StepShape:
+    """Baseline, settled end and normalised response of a step test.
+
+    The baseline is the mean output before the input moved; the settled value is the
+    mean of the last tenth of the record (at least three samples).
+    """
+    n = y.size
+    i0 = max(step.index, 1)
+    y_before = float(np.mean(y[:i0]))
+    tail = max(3, n // 10)
+    y_after = float(np.mean(y[-tail:]))
+    change = y_after - y_before
+    if change == 0.0:
+        change = 1e-300
+    k = int(np.searchsorted(t, step.effective_time - 1e-9 * (t[1] - t[0])))
+    k = max(min(k, n - 1), 0)
+    raw = (y[k:] - y_before) / change
+    s = raw
+    if noise_sd > 1e-3 * abs(change) and raw.size > 10:  # light centred 5-point average
+        c = np.cumsum(np.concatenate([[raw[0]] * 3, raw, [raw[-1]] * 2]))
+        s = (c[5:] - c[:-5]) / 5.0
+    return StepShape(t[k:] - step.effective_time, s, raw, y_before, y_after, noise_sd / abs(change))
+
+
+def _crossing(shape: StepShape, p: float) -> float:
+    """First time the normalised response reaches ``p`` (linear interpolation)."""
+    hits = np.flatnonzero(shape.s >= p)
+    if hits.size == 0:
+        return float("nan")
+    k = int(hits[0])
+    if k == 0:
+        return float(shape.t[0])
+    s0, s1 = shape.s[k - 1], shape.s[k]
+    return float(shape.t[k - 1] + (p - s0) / (s1 - s0) * (shape.t[k] - shape.t[k - 1]))
+
+
+def _result(shape: StepShape, step: StepInfo, tau: float, theta: float) -> Estimate:
+    gain = (shape.y_after - shape.y_before) / step.size
+    ok = np.isfinite(tau) and np.isfinite(theta) and tau > 0
+    return Estimate(
+        "fopdt",
+        gain,
+        float(tau) if ok else None,
+        float(max(theta, 0.0)) if ok else float("nan"),
+        shape.y_before,
+        converged=bool(ok),
+    )
+
+
+def graphical(shape: StepShape, step: StepInfo) -> Estimate:
+    """Graphical 63.2 % method.
+
+    Notes
+    -----
+    Gain = change in output / change in input; dead time from the input change to the
+    first sustained output move (leaving a band of three noise sd or 1 % of the
+    change); time constant from that moment to 63.2 % of the change. The traditional
+    hand method of process-control texts (e.g. Seborg, Edgar & Mellichamp, *Process
+    Dynamics and Control*); it reads the time constant about 1 % short on exact data.
+    """
+    band = max(3.0 * shape.noise, 0.01)
+    t63 = _crossing(shape, 1.0 - math.exp(-1.0))
+    below = np.flatnonzero((shape.s < band) & (shape.t < t63))
+    if below.size and below[-1] + 1 < shape.s.size:
+        k = below[-1] + 1
+        s0, s1 = shape.s[k - 1], shape.s[k]
+        t_move = shape.t[k - 1] + (band - s0) / (s1 - s0) * (shape.t[k] - shape.t[k - 1])
+    else:
+        t_move = float(shape.t[0])
+    return _result(shape, step, t63 - t_move, t_move)
+
+
+def two_point(shape: StepShape, step: StepInfo, p1: float, p2: float) -> Estimate:
+    """Two-point method with exact coefficients (see :func:`two_point_coefficients`)."""
+    c_tau, c1, c2 = two_point_coefficients(p1, p2)
+    t1, t2 = _crossing(shape, p1), _crossing(shape, p2)
+    return _result(shape, step, c_tau * (t2 - t1), c1 * t1 - c2 * t2)
+
+
+def smith(shape: StepShape, step: StepInfo) -> Estimate:
+    """Smith (1972) two-point method at 28.3 % and 63.2 % of the change."""
+    return two_point(shape, step, 0.283, 0.632)
+
+
+def sundaresan(shape: StepShape, step: StepInfo) -> Estimate:
+    """Sundaresan & Krishnaswamy (1978) two-point method at 35.3 % and 85.3 %."""
+    return two_point(shape, step, 0.353, 0.853)
+
+
+def area(shape: StepShape, step: StepInfo) -> Estimate:
+    """Area method of Åström & Hägglund (1995).
+
+    Notes
+    -----
+    ``A0 = integral of (1 - s) dt = theta + tau`` over the whole response and
+    ``A1 = integral of s dt`` from the step to ``A0`` equals ``tau / e``, so
+    ``tau = e A1`` and ``theta = A0 - tau`` (Åström & Hägglund, *PID Controllers:
+    Theory, Design and Tuning*, 1995). Integrals average the noise away.
+    """
+    t, s = shape.t, shape.raw
+    t_full = np.concatenate([[0.0], t]) if t[0] > 0 else t
+    s_full = np.concatenate([[0.0], s]) if t[0] > 0 else s
+    a0 = float(np.trapezoid(1.0 - s_full, t_full))
+    mask = t_full <= a0
+    if a0 <= 0 or mask.sum() < 2:
+        return _result(shape, step, float("nan"), float("nan"))
+    tm, sm = t_full[mask], s_full[mask]
+    a1 = float(np.trapezoid(sm, tm))
+    if tm[-1] < a0 and mask.sum() < t_full.size:  # close the last partial interval
+        k = int(mask.sum())
+        s_end = np.interp(a0, t_full[k - 1 : k + 1], s_full[k - 1 : k + 1])
+        a1 += 0.5 * (sm[-1] + s_end) * (a0 - tm[-1])
+    tau = math.e * a1
+    return _result(shape, step, tau, a0 - tau)
+
+
+# --- least squares (output error, variable projection) ----------------------------------
+
+MIN_AFTER_SAMPLES = 3  # the response must start at least this many samples before the end
+TAU_MIN_SAMPLES = 0.05  # below this the lag is invisible at the sample rate
+TAU_MAX_POST_RECORDS = 50.0  # upper bound on tau, in lengths of the record after the step
+
+
+@dataclass(frozen=True)
+class LeastSquaresFit:
+    """Least-squares estimate with what the uncertainty needs.
+
+    ``jacobian`` holds derivatives of the output with respect to (offset, gain,
+    time_constant, dead_time) in seconds, or (offset, gain, dead_time) for the
+    integrating model.
+    """
+
+    estimate: Estimate
+    jacobian: np.ndarray
+    residuals: np.ndarray
+    iterations: int
+
+
+def _linear_fit(g: np.ndarray, y: np.ndarray) -> tuple[float, float, np.ndarray, float]:
+    """Offset and gain of ``y = c + K g`` by least squares (the linear part of VP)."""
+    n = g.size
+    gm, ym = g.sum() / n, y.sum() / n
+    gc = g - gm
+    sgg = float(gc @ gc)
+    gain = float(gc @ y) / sgg if sgg > 1e-300 else 0.0
+    offset = float(ym - gain * gm)
+    r = y - offset - gain * g
+    return offset, gain, r, float(r @ r)
+
+
+class _Profile:
+    """Residual sum of squares of ``y = c + K g0(k - d)`` for every whole-sample shift d.
+
+    Shifting a zero-dead-time response by d samples is the response with dead time d,
+    so one filter run and one FFT correlation give the profile over all dead times.
+    """
+
+    def __init__(self, y: np.ndarray, d_max: int) -> None:
+        self.n = y.size
+        self.d_max = max(int(d_max), 0)
+        self.length = sp_fft.next_fast_len(2 * self.n, real=True)
+        yc = y - y.mean()
+        self.syy = float(yc @ yc)
+        self.y_spectrum = sp_fft.rfft(yc, self.length)
+
+    def rss(self, g0: np.ndarray) -> np.ndarray:
+        shifts = np.arange(self.d_max + 1)
+        corr = sp_fft.irfft(np.conj(sp_fft.rfft(g0, self.length)) * self.y_spectrum, self.length)
+        corr = corr[: self.d_max + 1]
+        last = self.n - 1 - shifts
+        sg = np.cumsum(g0)[last]
+        sgg = np.cumsum(g0 * g0)[last] - sg * sg / self.n
+        ok = sgg > 1e-12 * max(float(np.max(sgg)), 1e-300)
+        out = np.full(shifts.size, self.syy)
+        out[ok] -= corr[ok] ** 2 / sgg[ok]
+        return out
+
+
+def _levenberg_marquardt(evaluate, y, p, lower, upper, max_iter=40):
+    """Variable-projection Levenberg-Marquardt over the nonlinear parameters ``p``.
+
+    ``evaluate(p)`` returns the unit-gain response and its derivatives (n, m). The
+    offset and gain are solved exactly at every trial point; the step uses the
+    Kaufman (1975) approximation of the projected Jacobian.
+    """
+    g, D = evaluate(p)
+    c, K, r, rss = _linear_fit(g, y)
+    lam = 1e-3
+    it = 0
+    for it in range(1, max_iter + 1):
+        Jn = K * D
+        gc = g - g.mean()
+        Jc = Jn - Jn.mean(axis=0)
+        sgg = float(gc @ gc)
+        if sgg > 1e-300:
+            Jc = Jc - np.outer(gc, gc @ Jc) / sgg
+        A = Jc.T @ Jc
+        b = Jc.T @ r
+        diag = np.diag(A).copy()
+        diag[diag <= 0] = 1e-12
+        accepted = False
+        for _ in range(10):
+            try:
+                delta = np.linalg.solve(A + lam * np.diag(diag), b)
+            except np.linalg.LinAlgError:
+                lam *= 10
+                continue
+            p_new = np.clip(p + delta, lower, upper)
+            if float(delta @ b) <= 1e-10 * rss and np.all(np.abs(p_new - p) < 1e-4):
+                return p, c, K, r, rss, g, D, it  # predicted gain negligible: converged
+            g_new, D_new = evaluate(p_new)
+            c_new, K_new, r_new, rss_new = _linear_fit(g_new, y)
+            if rss_new <= rss:
+                accepted = True
+                break
+            lam *= 10
+        if not accepted:
+            break
+        moved = np.abs(p_new - p)
+        gain_rss = rss - rss_new
+        p, g, D, c, K, r, rss = p_new, g_new, D_new, c_new, K_new, r_new, rss_new
+        lam = max(lam / 10, 1e-9)
+        if np.all(moved < 1e-4) or gain_rss <= 1e-10 * max(rss, 1e-300):
+            break
+    return p, c, K, r, rss, g, D, it
+
+
+def least_squares_fopdt(
+    period: float,
+    v: np.ndarray,
+    y: np.ndarray,
+    step_index: int,
+    start: tuple[float, float] | None = None,
+) -> LeastSquaresFit | None:
+    """Output-error least-squares FOPDT fit to the measured input.
+
+    Parameters
+    ----------
+    period : float
+        Sample period T (s).
+    v : ndarray
+        Input in deviation from its pre-step level.
+    y : ndarray
+        Output samples.
+    step_index : int
+        First sample after the input started to move.
+    start : (tau, theta), optional
+        Point-method estimate in seconds, added to the search.
+
+    Returns
+    -------
+    LeastSquaresFit or None
+        None when the record leaves nothing to fit.
+
+    Notes
+    -----
+    Minimises the output error of the exact zero-order-hold model with fractional
+    dead time (Ljung, *System Identification*, 1999). Offset and gain enter linearly
+    and are projected out (variable projection; Golub & Pereyra, 1973), so only time
+    constant and dead time are searched, starting from the point-method estimate (or,
+    without one, the best point of a log grid of time constants). Refinement is by
+    Levenberg-Marquardt (Marquardt, 1963) in (log tau, theta). Local minima in dead
+    time are then ruled out by evaluating, at the refined time constant, the whole
+    profile over whole-sample dead times at once (one filter run and one FFT
+    correlation) and restarting from its best point if it does better.
+    """
+    n = y.size
+    n_post = n - step_index
+    d_max = n_post - MIN_AFTER_SAMPLES
+    if d_max < 0:
+        return None
+    tau_hi = TAU_MAX_POST_RECORDS * max(n_post, 1)
+    if start is not None and np.isfinite(start[0]) and start[0] > 0:
+        taus = []
+    else:
+        taus = list(np.geomspace(0.3, 3.0 * n_post, 10))
+    profile = _Profile(y, d_max)
+
+    def best_on_grid(taus):
+        best = (np.inf, 1.0, 0)
+        for tau in taus:
+            tau = float(np.clip(tau, TAU_MIN_SAMPLES, tau_hi))
+            rss = profile.rss(fopdt_unit_response(v, 1.0, tau, 0.0))
+            d = int(np.argmin(rss))
+            if rss[d] < best[0]:
+                best = (float(rss[d]), tau, d)
+        return best
+
+    def evaluate(p):
+        S = fopdt_sensitivities(v, 1.0, 1.0, math.exp(p[0]), p[1], u0=0.0)
+        return S[:, 0], np.column_stack([S[:, 1] * math.exp(p[0]), S[:, 2]])
+
+    lower = np.array([math.log(TAU_MIN_SAMPLES), 0.0])
+    upper = np.array([math.log(tau_hi), float(d_max)])
+    if start is not None and np.isfinite(start[0]) and start[0] > 0 and np.isfinite(start[1]):
+        p0 = np.clip([math.log(start[0] / period), start[1] / period], lower, upper)
+    else:
+        best = best_on_grid(taus)
+        p0 = np.array([math.log(best[1]), float(best[2])])
+    p, c, K, r, rss, g, D, it = _levenberg_marquardt(evaluate, y, p0, lower, upper)
+    # global check in dead time at the refined time constant: restart if another
+    # whole-sample dead time does better (guards against a local minimum)
+    check = best_on_grid([math.exp(p[0])])
+    if check[0] < rss * (1.0 - 1e-9):
+        p2 = np.array([math.log(check[1]), float(check[2])])
+        alt = _levenberg_marquardt(evaluate, y, p2, lower, upper)
+        if alt[4] < rss:
+            p, c, K, r, rss, g, D, it = alt
+    tau_n = math.exp(p[0])
+    at_bound = bool(p[0] >= upper[0] - 1e-3 or p[0] <= lower[0] + 1e-3)
+    jac = np.column_stack([np.ones(n), g, K * D[:, 0] / tau_n / period, K * D[:, 1] / period])
+    est = Estimate(
+        "fopdt", K, tau_n * period, float(p[1]) * period, c, rss, at_bound, bool(np.isfinite(rss))
+    )
+    return LeastSquaresFit(est, jac, r, it)
+
+
+def least_squares_integrating(
+    period: float, v: np.ndarray, y: np.ndarray, step_index: int
+) -> LeastSquaresFit | None:
+    """Output-error least-squares fit of an integrating-plus-dead-time model.
+
+    Notes
+    -----
+    ``dy/dt = k' v(t - theta)``: the integrating gain ``k'`` (slope change per input
+    change) and the offset are linear and projected out; the dead time is found by the
+    same whole-sample profile and Levenberg-Marquardt refinement as the FOPDT fit.
+    """
+    n = y.size
+    d_max = n - step_index - MIN_AFTER_SAMPLES
+    if d_max < 0:
+        return None
+    profile = _Profile(y, d_max)
+    rss0 = profile.rss(integrating_unit_response(v, 1.0, 0.0))
+    d0 = int(np.argmin(rss0))
+
+    def evaluate(p):
+        d, f = split_dead_time(float(p[0]), 1.0)
+        g = integrating_unit_response(v, 1.0, float(p[0]))
+        num = np.zeros(d + 3)
+        num[d + 1], num[d + 2] = -1.0, 1.0
+        return g, lfilter(num, [1.0, -1.0], v)[:, None]
+
+    p, c, K, r, rss, g, D, it = _levenberg_marquardt(
+        evaluate, y, np.array([float(d0)]), np.array([0.0]), np.array([float(d_max)])
+    )
+    jac = np.column_stack([np.ones(n), g * period, K * D[:, 0] / period])
+    est = Estimate("integrating", K / period, None, float(p[0]) * period, c, rss)
+    return LeastSquaresFit(est, jac, r, it)

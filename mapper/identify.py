@@ -1,0 +1,337 @@
+"""Identification of one step test: the public entry point and its result object.
+
+:func:`identify` finds the input step, runs the chosen estimator (default: output-error
+least squares), chooses between a first-order-plus-dead-time (FOPDT) and an
+integrating model, attaches 95 % intervals and judges the test. It never raises for
+bad data: a test that cannot give a model comes back ``rejected`` with flags.
+The estimators live in :mod:`mapper.estimators`, the uncertainty in
+:mod:`mapper.uncertainty`, the checks in :mod:`mapper.quality`.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from . import estimators as est
+from .errors import DataError, IdentificationError
+from .models import simulate_fopdt, simulate_integrating
+from .quality import FLAG_TEXT, StepInfo, assess, find_step, grade, noise_sd
+from .uncertainty import sandwich_covariance, t_quantile
+
+__all__ = ["METHODS", "FitResult", "identify", "find_step", "StepInfo"]
+
+METHODS = ("least_squares", "graphical", "smith", "sundaresan", "area")
+_POINT_METHODS = {
+    "graphical": est.graphical,
+    "smith": est.smith,
+    "sundaresan": est.sundaresan,
+    "area": est.area,
+}
+MIN_SAMPLES = 10
+MIN_BASELINE_SAMPLES = 3
+MIN_AFTER_SAMPLES = 5
+INTEGRATING_RSS_RATIO = 1.1  # integrating model kept if it fits within 10 % of the FOPDT
+
+
+def _finite(x) -> float | None:
+    return float(x) if x is not None and np.isfinite(x) else None
+
+
+@dataclass(frozen=True)
+class FitResult:
+    """Identified model of one step test, with 95 % intervals, quality and flags.
+
+    Times are in seconds; ``gain`` is output units per input unit (per second for the
+    integrating model). Interval bounds are None where no interval can be given (point
+    methods, or a parameter the data do not determine); ``notes`` says why.
+    """
+
+    model: str
+    method: str
+    gain: float | None
+    gain_lo: float | None
+    gain_hi: float | None
+    time_constant: float | None
+    time_constant_lo: float | None
+    time_constant_hi: float | None
+    dead_time: float | None
+    dead_time_lo: float | None
+    dead_time_hi: float | None
+    nrmse: float | None
+    quality: str
+    flags: tuple[str, ...]
+    notes: tuple[str, ...]
+    input_step: float | None
+    step_time: float | None
+    y_before: float | None
+    y_after: float | None
+    settings: dict = field(default_factory=dict, hash=False, compare=False)
+    offset: float | None = None
+    input_before: float | None = None
+    residual_sd: float | None = None
+    autocorrelation: float | None = None
+
+    _ROW_KEYS = (
+        "model", "method", "gain", "gain_lo", "gain_hi", "time_constant",
+        "time_constant_lo", "time_constant_hi", "dead_time", "dead_time_lo",
+        "dead_time_hi", "nrmse", "quality", "input_step", "step_time", "y_before", "y_after",
+    )  # fmt: skip
+
+    def to_row(self) -> dict:
+        """Plain dict for the store: the parameter columns, ``flags`` and ``notes`` as
+        lists of str and ``settings`` as a dict."""
+        row = {key: getattr(self, key) for key in self._ROW_KEYS}
+        row["flags"] = list(self.flags)
+        row["notes"] = list(self.notes)
+        row["settings"] = dict(self.settings)
+        return row
+
+    def fitted(self, t: np.ndarray, u: np.ndarray) -> np.ndarray:
+        """The model's output on samples ``t, u`` (NaN everywhere when there is no model)."""
+        t = np.asarray(t, dtype=float)
+        u = np.asarray(u, dtype=float)
+        ok = self.gain is not None and self.dead_time is not None and self.offset is not None
+        if self.model == "none" or not ok or t.size < 2:
+            return np.full(t.shape, np.nan)
+        period = float(np.median(np.diff(t)))
+        u0 = self.input_before if self.input_before is not None else float(u[0])
+        if self.model == "integrating":
+            return simulate_integrating(u, period, self.gain, self.dead_time, u0=u0, y0=self.offset)
+        return simulate_fopdt(
+            u, period, self.gain, self.time_constant, self.dead_time, u0=u0, y0=self.offset
+        )
+
+
+def _rejected(method, flags, settings, step: StepInfo | None = None, y=None) -> FitResult:
+    flags = tuple(dict.fromkeys(flags))
+    y_before = y_after = None
+    if step is not None and y is not None and y.size and step.index > 0:
+        y_before = _finite(np.mean(y[: step.index]))
+    if y is not None and y.size:
+        y_after = _finite(np.mean(y[-max(1, y.size // 10) :]))
+    return FitResult(
+        "none", method, None, None, None, None, None, None, None, None, None, None,
+        "rejected", flags, tuple(FLAG_TEXT.get(f, f) for f in flags),
+        _finite(step.size) if step is not None else None,
+        _finite(step.time) if step is not None else None,
+        y_before, y_after, settings,
+    )  # fmt: skip
+
+
+def identify(
+    t: np.ndarray,
+    u: np.ndarray,
+    y: np.ndarray,
+    *,
+    method: str = "least_squares",
+    input_range: tuple[float, float] | None = None,
+    output_range: tuple[float, float] | None = None,
+) -> FitResult:
+    """Identify a FOPDT (or integrating) model from one open-loop step test.
+
+    Parameters
+    ----------
+    t : ndarray
+        Sample times in seconds on a uniform grid.
+    u, y : ndarray
+        Input (the stepped variable) and output (the response).
+    method : str, default "least_squares"
+        One of :data:`METHODS`: ``"least_squares"`` (output error on the measured
+        input, with 95 % intervals), ``"graphical"`` (63.2 %), ``"smith"``,
+        ``"sundaresan"`` or ``"area"``.
+    input_range, output_range : (float, float), optional
+        Instrument ranges, used by the clipping checks.
+
+    Returns
+    -------
+    FitResult
+        Always; tests without a usable model are ``quality="rejected"``.
+
+    Raises
+    ------
+    IdentificationError
+        For an unknown ``method``.
+    DataError
+        When ``t``, ``u`` and ``y`` are not 1-D arrays of one length.
+
+    Notes
+    -----
+    The integrating model is chosen when the fitted FOPDT has not reached 63 % of its
+    change by the end of the record and an integrating model fits as well (within
+    10 % residual sum of squares): the output ramps and never settles. Intervals come
+    from the Jacobian at the optimum, widened for AR(1) residuals
+    (:func:`mapper.uncertainty.sandwich_covariance`); the time-constant interval is
+    taken on a log scale so it stays positive.
+    """
+    if method not in METHODS:
+        raise IdentificationError(
+            f"unknown identification method {method!r}", hint="choose one of " + ", ".join(METHODS)
+        )
+    t, u, y = (np.asarray(a, dtype=float) for a in (t, u, y))
+    if t.ndim != 1 or t.shape != u.shape or t.shape != y.shape:
+        raise DataError(
+            f"time, input and output must be 1-D arrays of one length, got shapes "
+            f"{t.shape}, {u.shape}, {y.shape}",
+            hint="pass one column per signal",
+        )
+    settings = {
+        "method": method,
+        "confidence": 0.95,
+        "input_range": list(input_range) if input_range is not None else None,
+        "output_range": list(output_range) if output_range is not None else None,
+    }
+    if t.size < MIN_SAMPLES:
+        return _rejected(method, ["too_few_samples"], settings)
+    if not (np.all(np.isfinite(t)) and np.all(np.isfinite(u)) and np.all(np.isfinite(y))):
+        return _rejected(method, ["non_finite_samples"], settings)
+    dt = np.diff(t)
+    period = float(np.median(dt))
+    if not period > 0 or np.any(dt <= 0):
+        return _rejected(method, ["irregular_sampling", "too_few_samples"], settings)
+    flags: list[str] = []
+    if np.max(np.abs(dt - period)) > 0.01 * period:
+        flags.append("irregular_sampling")
+    settings["period"] = period
+    step = find_step(t, u)
+    if not step.found:
+        return _rejected(method, flags + ["no_input_step"], settings, step, y)
+    if step.index < MIN_BASELINE_SAMPLES:
+        return _rejected(method, flags + ["no_baseline_before_step"], settings, step, y)
+    if t.size - step.index < MIN_AFTER_SAMPLES:
+        return _rejected(method, flags + ["step_at_end"], settings, step, y)
+    if np.ptp(y) == 0.0:
+        return _rejected(method, flags + ["no_response"], settings, step, y)
+    return _identify_step(t, u, y, step, method, flags, settings, input_range, output_range)
+
+
+def _identify_step(t, u, y, step, method, flags, settings, input_range, output_range):
+    period = settings["period"]
+    v = u - step.u_before
+    notes: list[str] = []
+    shape = est.step_shape(t, y, step, noise_sd(y))
+    start = est.smith(shape, step)
+    fit = None
+    used = method
+    cov = None
+    phi = None
+    quantile = None
+    if method == "least_squares" or _still_ramping(shape):
+        fit = _least_squares(period, v, y, step, start)
+        if fit is None:
+            return _rejected(method, flags + ["fit_failed"], settings, step, y)
+        if method != "least_squares" and fit.estimate.model == "fopdt":
+            fit = None  # the point method stands; the record merely did not settle
+        elif method != "least_squares":
+            used = "least_squares"
+            notes.append(
+                f"The {method} method needs a settled response; the output ramps, so an "
+                "integrating model was fitted by least squares."
+            )
+    if fit is not None:
+        e = fit.estimate
+        cov, phi, dof = sandwich_covariance(fit.jacobian, fit.residuals)
+        quantile = t_quantile(dof)
+    else:
+        e = _POINT_METHODS[method](shape, step)
+        if e.time_constant is None:
+            return _rejected(method, flags + ["fit_failed"], settings, step, y)
+        notes.append("Point methods give no interval; use least_squares for 95 % intervals.")
+    settings["method"] = used
+    if e.model == "integrating":
+        fitted = simulate_integrating(u, period, e.gain, e.dead_time, u0=step.u_before, y0=e.offset)
+        response = fitted[-1] - e.offset
+        y_after = float(fitted[-1])
+    else:
+        if fit is not None:
+            fitted = y - fit.residuals
+        else:
+            fitted = simulate_fopdt(
+                u, period, e.gain, e.time_constant, e.dead_time, u0=step.u_before, y0=e.offset
+            )
+        response = e.gain * step.size
+        y_after = e.offset + response
+    residuals = y - fitted
+    sd = float(np.std(residuals))
+    span = float(np.ptp(fitted))
+    nrmse = float(np.sqrt(np.mean(residuals**2)) / span) if span > 0 else None
+    intervals = _intervals(e, cov, quantile)
+    flags = flags + assess(
+        t, u, y, step,
+        model=e.model, time_constant=e.time_constant, dead_time=e.dead_time,
+        response=response, residuals=residuals,
+        input_range=input_range, output_range=output_range,
+    )  # fmt: skip
+    band = 4.0 * sd
+    gain_lo, gain_hi = intervals["gain"]
+    if abs(response) <= band or (gain_lo is not None and gain_lo <= 0.0 <= gain_hi):
+        flags.append("response_below_noise")
+    if not np.isfinite(e.dead_time) or e.dead_time >= t[-1] - step.time - 2 * period:
+        flags.append("dead_time_beyond_record")
+    if e.at_bound and e.model == "fopdt":
+        flags.append("time_constant_at_bound")
+    flags = list(dict.fromkeys(flags))
+    notes = [FLAG_TEXT.get(f, f) for f in flags] + notes
+    return FitResult(
+        model=e.model, method=used,
+        gain=_finite(e.gain), gain_lo=gain_lo, gain_hi=gain_hi,
+        time_constant=_finite(e.time_constant),
+        time_constant_lo=intervals["time_constant"][0],
+        time_constant_hi=intervals["time_constant"][1],
+        dead_time=_finite(e.dead_time),
+        dead_time_lo=intervals["dead_time"][0], dead_time_hi=intervals["dead_time"][1],
+        nrmse=_finite(nrmse), quality=grade(flags), flags=tuple(flags), notes=tuple(notes),
+        input_step=_finite(step.size), step_time=_finite(step.time),
+        y_before=_finite(e.offset), y_after=_finite(y_after), settings=settings,
+        offset=_finite(e.offset), input_before=_finite(step.u_before),
+        residual_sd=_finite(sd), autocorrelation=_finite(phi) if phi is not None else None,
+    )  # fmt: skip
+
+
+def _still_ramping(shape) -> bool:
+    """True when the last fifth of the record still carries a fifth of the change."""
+    n = shape.raw.size
+    if n < 10:
+        return False
+    tail = shape.raw[-max(3, n // 5) :]
+    return abs(tail[-1] - tail[0]) > 0.2 or abs(np.mean(tail[-3:]) - np.mean(tail[:3])) > 0.2
+
+
+def _least_squares(period, v, y, step: StepInfo, start: est.Estimate):
+    """FOPDT by least squares; the integrating model when the output never settles."""
+    # a point-method start assumes one clean move; otherwise search a grid
+    single = step.n_moves == 1 and start.time_constant
+    guess = (start.time_constant, start.dead_time) if single else None
+    fopdt = est.least_squares_fopdt(period, v, y, step.index, guess)
+    if fopdt is None:
+        return None
+    e = fopdt.estimate
+    record_after = period * (y.size - step.index)
+    if e.at_bound or e.time_constant > record_after - e.dead_time:
+        ramp = est.least_squares_integrating(period, v, y, step.index)
+        if ramp is not None and ramp.estimate.rss <= INTEGRATING_RSS_RATIO * e.rss + 1e-300:
+            return ramp
+    return fopdt
+
+
+def _intervals(e: est.Estimate, cov, z) -> dict[str, tuple[float | None, float | None]]:
+    none = (None, None)
+    out = {"gain": none, "time_constant": none, "dead_time": none}
+    if cov is None:
+        return out
+    sd = np.sqrt(np.clip(np.diag(cov), 0.0, np.inf))
+    out["gain"] = (_finite(e.gain - z * sd[1]), _finite(e.gain + z * sd[1]))
+    k = 2
+    if e.model == "fopdt":
+        rel = sd[2] / e.time_constant  # log-scale interval stays positive
+        if np.isfinite(rel) and rel < 50:
+            out["time_constant"] = (
+                _finite(e.time_constant * math.exp(-z * rel)),
+                _finite(e.time_constant * math.exp(z * rel)),
+            )
+        k = 3
+    lo = max(e.dead_time - z * sd[k], 0.0)
+    out["dead_time"] = (_finite(lo), _finite(e.dead_time + z * sd[k]))
+    return out

@@ -1,0 +1,258 @@
+"""Jobs that combine several modules: what the map, at, verdict, compare, report and demo
+commands do. Each takes a store path and plain options and returns plain results, so the
+command line stays thin and notebooks can call the same functions.
+"""
+
+from __future__ import annotations
+
+import json
+import shutil
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .errors import MapperError, NotFoundError
+from .models import simulate_fopdt, simulate_integrating
+from .opmap import (OperatingMap, build_map, compare_campaigns, compare_directions,
+                    compare_repeats)
+from .store import Store
+from .verdict import Verdict, decide
+
+SAFETY_NOTE = ("Step tests and new tuning can hurt people and equipment: agree limits with "
+               "operations, stay clear of alarm and trip limits, verify settings before use, and "
+               "follow site procedures and licensed practice.")
+
+
+@dataclass
+class CampaignData:
+    """One campaign's rows of ``test_params`` with its units and instrument ranges."""
+
+    name: str
+    params: pd.DataFrame
+    units: dict
+    ranges: dict
+    note: str = ""
+
+
+def _finite(value) -> float | None:
+    try:
+        value = float(value)
+    except (TypeError, ValueError):
+        return None
+    return value if np.isfinite(value) else None
+
+
+def load_campaign_data(store: Store, campaign: str | None = None) -> CampaignData:
+    """The named campaign, or the newest one when the store holds several."""
+    campaigns = store.campaign_info()
+    if not campaigns:
+        raise NotFoundError(f"{store.path}: the store holds no campaign yet",
+                            hint="run 'mapper import FOLDER' and 'mapper fit' first")
+    note = ""
+    if campaign is None:
+        info = campaigns[-1]
+        if len(campaigns) > 1:
+            note = (f"campaign '{info['name']}' (newest of {len(campaigns)}; choose another "
+                    "with --campaign)")
+    else:
+        matches = [c for c in campaigns if c["name"] == campaign]
+        if not matches:
+            names = ", ".join(repr(c["name"]) for c in campaigns)
+            raise NotFoundError(f"campaign '{campaign}' is not in {store.path}",
+                                hint=f"campaigns stored: {names}")
+        info = matches[0]
+    params = store.params(campaign=info["name"])
+    if params["quality"].isna().all():
+        raise MapperError(f"campaign '{info['name']}' has no fitted tests",
+                          hint="run 'mapper fit' first")
+    units = {"input": info.get("input_unit") or "", "output": info.get("output_unit") or ""}
+    ranges = {}
+    for side in ("input", "output"):
+        low, high = _finite(info.get(f"{side}_range_low")), _finite(info.get(f"{side}_range_high"))
+        if low is not None and high is not None:
+            ranges[side] = [low, high]
+    return CampaignData(info["name"], params, units, ranges, note)
+
+
+def operating_map(store_path, *, campaign: str | None = None, against: str = "level") -> tuple[CampaignData, OperatingMap]:
+    """The operating map of a campaign (trends of gain, time constant, dead time, K/tau)."""
+    with Store(store_path, read_only=True) as store:
+        data = load_campaign_data(store, campaign)
+    return data, build_map(data.params, against=against)
+
+
+def parameters_at(store_path, level: float, *, campaign: str | None = None,
+                  extrapolate: bool = False) -> dict:
+    """Gain, time constant and dead time at ``level`` with their 95 % band."""
+    _, opmap = operating_map(store_path, campaign=campaign)
+    return opmap.at(level, extrapolate=extrapolate)
+
+
+def verdict_for(store_path, *, campaign: str | None = None, ms_max: float = 2.0,
+                slowdown_max: float = 2.0, closed_loop_time: float | None = None,
+                rule: str = "simc", schedule_out: Path | None = None) -> tuple[CampaignData, Verdict]:
+    """Single controller or schedule for a campaign; optionally write the schedule CSV."""
+    data, opmap = operating_map(store_path, campaign=campaign)
+    verdict = decide(data.params, ms_max=ms_max, slowdown_max=slowdown_max,
+                     closed_loop_time=closed_loop_time, ranges=data.ranges or None, rule=rule,
+                     opmap=opmap)
+    if schedule_out is not None:
+        verdict.write_schedule_csv(Path(schedule_out), units=data.units)
+    return data, verdict
+
+
+def comparisons(store_path, *, campaign: str | None = None) -> list[dict]:
+    """Repeats and up-against-down comparisons inside one campaign."""
+    with Store(store_path, read_only=True) as store:
+        data = load_campaign_data(store, campaign)
+    return compare_repeats(data.params) + compare_directions(data.params)
+
+
+def compare_two(store_path, first: str, second: str) -> list[dict]:
+    """Campaign ``first`` against ``second``: which parameters moved, where, how significantly."""
+    with Store(store_path, read_only=True) as store:
+        a = load_campaign_data(store, first)
+        b = load_campaign_data(store, second)
+    return compare_campaigns(a.params, b.params, names=(a.name, b.name))
+
+
+def _fitted_curve(fit: dict | None, t: np.ndarray, u: np.ndarray) -> np.ndarray | None:
+    if not fit or fit.get("model") not in ("fopdt", "integrating"):
+        return None
+    settings = json.loads(fit.get("settings") or "{}")
+    offset = settings.get("offset", fit.get("y_before"))
+    u0 = settings.get("input_before", float(u[0]))
+    gain, dead_time = _finite(fit.get("gain")), _finite(fit.get("dead_time"))
+    if offset is None or gain is None or dead_time is None or len(t) < 2:
+        return None
+    period = float(np.median(np.diff(t)))
+    if fit["model"] == "integrating":
+        return simulate_integrating(u, period, gain, dead_time, u0=u0, y0=offset)
+    time_constant = _finite(fit.get("time_constant"))
+    if time_constant is None:
+        return None
+    return simulate_fopdt(u, period, gain, time_constant, dead_time, u0=u0, y0=offset)
+
+
+def _iter_tests(store: Store, params: pd.DataFrame):
+    """Per-test items for the report, read from the store one test at a time."""
+    for row in params.to_dict("records"):
+        test_id = int(row["test_id"])
+        t, u, y = store.samples(test_id)
+        fit = store.fit_details(test_id)
+        info = store.test_info(test_id)
+        item = dict(row)
+        item.update(note=info.get("note") or "", t=t, u=u, y=y, fitted=_fitted_curve(fit, t, u),
+                    step_time=_finite(fit.get("step_time")) if fit else None)
+        yield item
+
+
+@dataclass
+class ReportOutcome:
+    path: Path
+    size_bytes: int
+    png_files: tuple = ()
+    verdict: Verdict | None = None
+    notes: list[str] = field(default_factory=list)
+
+
+def write_campaign_report(store_path, out: Path, *, campaign: str | None = None,
+                          png_dir: Path | None = None, ms_max: float = 2.0,
+                          slowdown_max: float = 2.0, compare_with: str | None = None) -> ReportOutcome:
+    """The self-contained HTML report of a campaign (and PNG charts when ``png_dir``)."""
+    from .report import write_report
+    data, verdict = verdict_for(store_path, campaign=campaign, ms_max=ms_max, slowdown_max=slowdown_max)
+    opmap = build_map(data.params)
+    found = comparisons(store_path, campaign=data.name)
+    if compare_with:
+        found += compare_two(store_path, compare_with, data.name)
+    with Store(store_path, read_only=True) as store:
+        tests = list(_iter_tests(store, data.params))
+    summary = {"name": data.name, "n_tests": int(len(data.params)), "units": data.units}
+    for quality in ("good", "suspect", "rejected"):
+        summary[f"{quality} tests"] = int((data.params["quality"] == quality).sum())
+    if data.note:
+        summary["note"] = data.note
+    info = write_report(out, campaign=summary, params=data.params, trend=opmap.trend_frame(),
+                        map_summary=opmap.summary(), verdict=verdict.to_dict(), comparisons=found,
+                        tests=tests, png_dir=png_dir)
+    return ReportOutcome(Path(info.path), info.size_bytes, tuple(info.png_files), verdict)
+
+
+def analyse_store(store_path, *, out_dir: Path, campaign: str | None = None) -> ReportOutcome:
+    """Verdict, schedule CSV and report for a fitted store (used by demo and bench)."""
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    verdict_for(store_path, campaign=campaign, schedule_out=out_dir / "schedule.csv")
+    return write_campaign_report(store_path, out_dir / "report.html", campaign=campaign)
+
+
+def sample_campaign_folder() -> Path:
+    """The bundled sample campaign (beside the package in a source checkout)."""
+    return Path(__file__).resolve().parents[1] / "sample_campaign"
+
+
+@dataclass
+class DemoOutcome:
+    folder: Path
+    store: Path
+    report: Path
+    schedule: Path
+    pngs: tuple
+    seconds: float
+    lines: list[str]
+
+
+def run_demo(out_dir: Path, *, png: bool = True) -> DemoOutcome:
+    """The whole job on the sample campaign, into a fresh store inside ``out_dir``.
+
+    Never touches any other store: the demo store lives in ``out_dir`` and is replaced on
+    each run.
+    """
+    from .fitting import fit_store
+    from .ingest import import_sources
+    from .output import table
+    started = time.perf_counter()
+    source = sample_campaign_folder()
+    folders = sorted(p for p in source.iterdir() if (p / "campaign.toml").is_file()) if source.is_dir() else []
+    if not folders:
+        raise NotFoundError(f"the sample campaign is missing ({source})",
+                            hint="run 'python -m mapper.demo --write sample_campaign' in the source checkout")
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    db = out_dir / "demo.duckdb"
+    for stale in (db, out_dir / "demo.duckdb.wal"):
+        if stale.exists():
+            stale.unlink()
+    lines: list[str] = []
+    with Store(db) as store:
+        summary = import_sources(store, folders)
+        lines += summary.lines()
+        fitted = fit_store(store)
+        lines += fitted.lines()
+        names = [c["name"] for c in store.campaign_info()]
+    newest = names[-1]
+    data, opmap = operating_map(db, campaign=newest)
+    lines += ["", f"Operating map of '{newest}':"]
+    lines += table([{k: v for k, v in row.items() if k != "reason"} for row in opmap.summary()]).splitlines()
+    data, verdict = verdict_for(db, campaign=newest, schedule_out=out_dir / "schedule.csv")
+    result = verdict.to_dict()
+    lines += ["", f"Verdict: {result['decision']}"] + [f"  - {r}" for r in result["reasons"]]
+    if len(names) > 1:
+        moved = compare_two(db, names[0], newest)
+        lines += ["", f"'{names[0]}' against '{newest}':"] + [f"  - {m['sentence']}" for m in moved[:6]]
+    png_dir = out_dir / "charts" if png else None
+    if png_dir is not None and png_dir.exists():
+        shutil.rmtree(png_dir)
+    report = write_campaign_report(db, out_dir / "report.html", campaign=newest, png_dir=png_dir,
+                                   compare_with=names[0] if len(names) > 1 else None)
+    seconds = time.perf_counter() - started
+    lines += ["", f"store:    {db}", f"report:   {report.path} ({report.size_bytes / 1e6:.1f} MB)",
+              f"schedule: {out_dir / 'schedule.csv'}"]
+    if report.png_files:
+        lines.append(f"charts:   {len(report.png_files)} PNG files in {png_dir}")
+    lines += [f"done in {seconds:.1f} s", "", SAFETY_NOTE]
+    return DemoOutcome(out_dir, db, report.path, out_dir / "schedule.csv", report.png_files, seconds, lines)

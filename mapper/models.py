@@ -1,0 +1,307 @@
+"""Response maths of the process models mapper identifies.
+
+This module owns the first-order-plus-dead-time (FOPDT) and integrating-plus-dead-time
+models: their exact zero-order-hold (ZOH) discretisation with a fractional dead time,
+their response to any sampled input, their sensitivities to the parameters and the
+analytic step response. It uses numpy and scipy only and knows nothing of files,
+stores or quality checks.
+
+Conventions (see ``docs/interfaces.md``): time in seconds, arrays 1-D float64 on a
+uniform grid of period ``period``, the input held constant between samples, and the
+process at rest before the first sample, so the response is ``y0 + G * (u - u0)``
+with ``u0 = u[0]`` unless given.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from scipy.signal import lfilter
+
+__all__ = [
+    "zoh_coefficients",
+    "split_dead_time",
+    "simulate_fopdt",
+    "fopdt_sensitivities",
+    "fopdt_unit_response",
+    "simulate_integrating",
+    "integrating_unit_response",
+    "step_response",
+]
+
+
+def _check_positive(name: str, value: float) -> None:
+    if not (np.isfinite(value) and value > 0):
+        raise ValueError(f"{name} must be a positive finite number, got {value!r}")
+
+
+def split_dead_time(dead_time: float, period: float) -> tuple[int, float]:
+    """Split a dead time into whole samples and a fraction of a sample.
+
+    Parameters
+    ----------
+    dead_time : float
+        Dead time theta in seconds, ``>= 0``.
+    period : float
+        Sample period T in seconds.
+
+    Returns
+    -------
+    delay_samples : int
+        ``d`` such that ``theta = d * T + f``.
+    fraction : float
+        ``f`` in seconds, ``0 <= f < T``.
+    """
+    _check_positive("period", period)
+    if not (np.isfinite(dead_time) and dead_time >= 0):
+        raise ValueError(f"dead_time must be finite and >= 0, got {dead_time!r}")
+    ratio = dead_time / period
+    d = int(math.floor(ratio + 1e-12))  # tolerate round-off at whole samples
+    f = dead_time - d * period
+    if f < 0.0:
+        f = 0.0
+    if f >= period:  # pragma: no cover - guarded by the tolerance above
+        d, f = d + 1, 0.0
+    return d, f
+
+
+def zoh_coefficients(
+    gain: float, time_constant: float, dead_time: float, period: float
+) -> tuple[float, float, float, int]:
+    """Exact zero-order-hold discretisation of a FOPDT model with fractional dead time.
+
+    With ``theta = d*T + f`` (``0 <= f < T``) the sampled response obeys
+    ``y[k+1] = a*y[k] + b1*u[k-d] + b2*u[k-d-1]``.
+
+    Parameters
+    ----------
+    gain : float
+        Steady-state gain K (output units per input unit).
+    time_constant : float
+        Time constant tau in seconds, ``> 0``.
+    dead_time : float
+        Dead time theta in seconds, ``>= 0``.
+    period : float
+        Sample period T in seconds.
+
+    Returns
+    -------
+    a, b1, b2 : float
+        ``a = exp(-T/tau)``, ``b1 = K*(1 - exp(-(T-f)/tau))``,
+        ``b2 = K*(exp(-(T-f)/tau) - a)``.
+    delay_samples : int
+        Whole-sample part ``d`` of the dead time.
+
+    Notes
+    -----
+    Exact integration of ``tau dy/dt + y = K u(t - theta)`` over one period with the
+    input held between samples (zero-order hold); the fractional part of the delay
+    splits each held input value over two periods (the "modified z-transform";
+    Franklin, Powell & Workman, *Digital Control of Dynamic Systems*, 1998).
+    """
+    _check_positive("time_constant", time_constant)
+    d, f = split_dead_time(dead_time, period)
+    a = math.exp(-period / time_constant)
+    e = math.exp(-(period - f) / time_constant)
+    return a, gain * (1.0 - e), gain * (e - a), d
+
+
+def _deviation(u: np.ndarray, u0: float | None) -> np.ndarray:
+    u = np.asarray(u, dtype=float)
+    if u.ndim != 1:
+        raise ValueError(f"input must be a 1-D array, got shape {u.shape}")
+    return u - (u[0] if u0 is None else float(u0))
+
+
+def _delayed_numerator(d: int, c1: float, c2: float) -> np.ndarray:
+    b = np.zeros(d + 3)
+    b[d + 1] = c1
+    b[d + 2] = c2
+    return b
+
+
+def fopdt_unit_response(
+    v: np.ndarray, period: float, time_constant: float, dead_time: float
+) -> np.ndarray:
+    """Unit-gain FOPDT response to an input in deviation form ``v = u - u0``."""
+    a, b1, b2, d = zoh_coefficients(1.0, time_constant, dead_time, period)
+    return lfilter(_delayed_numerator(d, b1, b2), [1.0, -a], v)
+
+
+def simulate_fopdt(
+    u: np.ndarray,
+    period: float,
+    gain: float,
+    time_constant: float,
+    dead_time: float,
+    *,
+    u0: float | None = None,
+    y0: float = 0.0,
+) -> np.ndarray:
+    """Response of a FOPDT process to a sampled input.
+
+    Parameters
+    ----------
+    u : ndarray
+        Input samples on a uniform grid, held between samples.
+    period : float
+        Sample period T in seconds.
+    gain, time_constant, dead_time : float
+        K, tau (s, ``> 0``) and theta (s, ``>= 0``).
+    u0 : float, optional
+        Input at which the process was at rest; default ``u[0]``.
+    y0 : float, default 0.0
+        Output at rest.
+
+    Returns
+    -------
+    ndarray
+        Output samples, same length as ``u``.
+
+    Notes
+    -----
+    Uses the exact ZOH difference equation of :func:`zoh_coefficients`, evaluated with
+    ``scipy.signal.lfilter``.
+    """
+    v = _deviation(u, u0)
+    return y0 + gain * fopdt_unit_response(v, period, time_constant, dead_time)
+
+
+def fopdt_sensitivities(
+    u: np.ndarray,
+    period: float,
+    gain: float,
+    time_constant: float,
+    dead_time: float,
+    *,
+    u0: float | None = None,
+) -> np.ndarray:
+    """Derivatives of the sampled FOPDT response with respect to K, tau and theta.
+
+    Parameters
+    ----------
+    u : ndarray
+        Input samples.
+    period : float
+        Sample period T in seconds.
+    gain, time_constant, dead_time : float
+        The point at which to differentiate.
+    u0 : float, optional
+        Input at rest; default ``u[0]``.
+
+    Returns
+    -------
+    ndarray, shape (n, 3)
+        Columns ``dy/dK``, ``dy/dtau``, ``dy/dtheta``.
+
+    Notes
+    -----
+    Analytic: the coefficients ``a, b1, b2`` are differentiated and the derivative
+    recursion is filtered with the same pole. The dead-time derivative is taken within
+    the current sample interval (right-hand derivative where the dead time is a whole
+    number of samples), which is where the sampled response has a kink for ideal steps.
+    """
+    v = _deviation(u, u0)
+    tau = float(time_constant)
+    _check_positive("time_constant", tau)
+    d, f = split_dead_time(dead_time, period)
+    a = math.exp(-period / tau)
+    e = math.exp(-(period - f) / tau)
+    # Every numerator here has two taps at delays d+1 and d+2 over the pole a, so one
+    # run of the pole filter (w) and one of the double pole (z) give all columns as
+    # shifted combinations.
+    w = lfilter([1.0], [1.0, -a], v)
+    w1, w2 = _delay(w, d + 1), _delay(w, d + 2)
+    b1, b2 = 1.0 - e, e - a
+    g = b1 * w1 + b2 * w2
+    # d/dtau of a, b1, b2 (unit gain)
+    da = a * period / tau**2
+    db1 = -e * (period - f) / tau**2
+    db2 = e * (period - f) / tau**2 - da
+    z = lfilter([1.0], [1.0, -a], w)
+    g_tau = db1 * w1 + db2 * w2 + da * (b1 * _delay(z, d + 2) + b2 * _delay(z, d + 3))
+    # d/df of b1, b2: -e/tau and +e/tau
+    g_theta = (e / tau) * (w2 - w1)
+    return np.column_stack([g, gain * g_tau, gain * g_theta])
+
+
+def _delay(x: np.ndarray, shift: int) -> np.ndarray:
+    """``x`` delayed by ``shift`` samples, zeros shifted in (the process was at rest)."""
+    out = np.zeros_like(x)
+    if shift < x.size:
+        out[shift:] = x[: x.size - shift]
+    return out
+
+
+def integrating_unit_response(v: np.ndarray, period: float, dead_time: float) -> np.ndarray:
+    """Unit-gain integrating response ``integral of v(t - theta) dt`` with ZOH input."""
+    d, f = split_dead_time(dead_time, period)
+    return lfilter(_delayed_numerator(d, period - f, f), [1.0, -1.0], v)
+
+
+def simulate_integrating(
+    u: np.ndarray,
+    period: float,
+    gain: float,
+    dead_time: float,
+    *,
+    u0: float | None = None,
+    y0: float = 0.0,
+) -> np.ndarray:
+    """Response of an integrating-plus-dead-time process ``dy/dt = k' u(t - theta)``.
+
+    Parameters
+    ----------
+    u : ndarray
+        Input samples, held between samples.
+    period : float
+        Sample period T in seconds.
+    gain : float
+        Integrating gain k' (output units per second per input unit).
+    dead_time : float
+        theta in seconds, ``>= 0``.
+    u0 : float, optional
+        Input at which the output is at rest (no ramp); default ``u[0]``.
+    y0 : float, default 0.0
+        Output at the start.
+
+    Returns
+    -------
+    ndarray
+        Output samples.
+
+    Notes
+    -----
+    Exact ZOH integration: ``y[k+1] = y[k] + k'((T-f) v[k-d] + f v[k-d-1])``.
+    """
+    v = _deviation(u, u0)
+    return y0 + gain * integrating_unit_response(v, period, dead_time)
+
+
+def step_response(
+    t: np.ndarray, gain: float, time_constant: float, dead_time: float
+) -> np.ndarray:
+    """Analytic FOPDT response to a unit step applied at ``t = 0``.
+
+    Parameters
+    ----------
+    t : ndarray
+        Times in seconds (any spacing).
+    gain, time_constant, dead_time : float
+        K, tau (s, ``>= 0``; zero gives a pure delay) and theta (s).
+
+    Returns
+    -------
+    ndarray
+        ``K*(1 - exp(-(t - theta)/tau))`` for ``t >= theta``, 0 before.
+    """
+    t = np.asarray(t, dtype=float)
+    s = t - dead_time
+    out = np.zeros_like(t)
+    after = s >= 0
+    if time_constant > 0:
+        out[after] = gain * -np.expm1(-s[after] / time_constant)
+    else:
+        out[s > 0] = gain
+    return out

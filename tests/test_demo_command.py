@@ -1,0 +1,98 @@
+"""`mapper demo` end to end through the real entry point, then the analysis commands on its store."""
+
+from __future__ import annotations
+
+import csv
+import json
+from pathlib import Path
+
+import duckdb
+import pytest
+
+from conftest import run_mapper
+
+SAMPLE = Path(__file__).resolve().parents[1] / "sample_campaign"
+NEW = "Hot-water exchanger E-3, after overhaul, 2026"
+OLD = "Hot-water exchanger E-3, before overhaul, 2024"
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory) -> Path:
+    cwd = tmp_path_factory.mktemp("demo_cwd")
+    own = cwd / "mapper.duckdb"  # the user's own store: the demo must not touch it
+    own.write_bytes(b"someone's own file")
+    result = run_mapper("demo", "--out", "demo_out", cwd=cwd)
+    assert result.returncode == 0, result.stderr
+    assert own.read_bytes() == b"someone's own file"
+    (cwd / "stdout.txt").write_text(result.stdout)
+    return cwd / "demo_out"
+
+
+def test_demo_stores_every_sample_test(demo):
+    expected = sum(1 for p in SAMPLE.glob("*/*.csv"))
+    with duckdb.connect(str(demo / "demo.duckdb"), read_only=True) as con:
+        stored = con.execute("SELECT count(*), count(quality) FROM test_params").fetchone()
+    assert stored == (expected, expected)
+
+
+def test_demo_flags_the_imperfect_tests(demo):
+    with duckdb.connect(str(demo / "demo.duckdb"), read_only=True) as con:
+        rows = dict(con.execute("SELECT file, flags FROM test_params").fetchall())
+        quality = dict(con.execute("SELECT file, quality FROM test_params").fetchall())
+    # the three deliberately imperfect tests of the scenario (docs/sample_campaign.md)
+    assert "output_clipped" in rows["t080_up_2.csv"]
+    assert "not_settled" in rows["t072_down_2.csv"]
+    assert quality["t056_up_2.csv"] != "good"  # disturbed mid-test
+    clean = [f for f in rows if f not in ("t080_up_2.csv", "t072_down_2.csv", "t056_up_2.csv")]
+    assert all(quality[f] == "good" for f in clean), {f: rows[f] for f in clean if quality[f] != "good"}
+
+
+def test_demo_writes_verdict_report_and_schedule(demo):
+    stdout = (demo.parent / "stdout.txt").read_text()
+    assert "Verdict: schedule" in stdout
+    report = (demo / "report.html").read_text()
+    assert "<svg" in report or "vega" in report.lower()
+    assert NEW in report
+    with (demo / "schedule.csv").open() as handle:
+        lines = handle.read().splitlines()
+    assert any("CAUTION" in line for line in lines if line.startswith("#"))
+    rows = list(csv.DictReader(line for line in lines if not line.startswith("#")))
+    assert len(rows) >= 2 and all(float(r["kc"]) > 0 and float(r["ti"]) > 0 for r in rows)
+    assert (demo / "charts" / "operating_map.png").stat().st_size > 10_000
+
+
+def test_at_inside_and_outside_the_range(demo):
+    db = demo / "demo.duckdb"
+    inside = run_mapper("at", "60", "--campaign", NEW, "--format", "json", db=db)
+    assert inside.returncode == 0, inside.stderr
+    answer = json.loads(inside.stdout)
+    assert set(answer) >= {"level", "gain", "gain_lo", "gain_hi", "time_constant", "time_constant_lo",
+                           "time_constant_hi", "dead_time", "dead_time_lo", "dead_time_hi"}
+    assert answer["gain_lo"] < answer["gain"] < answer["gain_hi"]
+    outside = run_mapper("at", "95", "--campaign", NEW, db=db)
+    assert outside.returncode == 1 and "40" in outside.stderr and "80" in outside.stderr
+    assert "Traceback" not in outside.stderr
+
+
+def test_verdict_json_shape(demo):
+    result = run_mapper("verdict", "--campaign", NEW, "--format", "json", db=demo / "demo.duckdb")
+    assert result.returncode == 0, result.stderr
+    verdict = json.loads(result.stdout)
+    assert verdict["decision"] in ("single", "schedule")
+    assert verdict["reasons"] and all(isinstance(r, str) for r in verdict["reasons"])
+    assert set(verdict["variation"]["gain"]) >= {"min", "max", "ratio", "significant"}
+    assert {"level", "ms", "gain_margin", "phase_margin_deg", "slowdown"} <= set(verdict["points"][0])
+    assert {"level", "kc", "ti"} <= set(verdict["schedule"][0])
+
+
+def test_map_and_compare_commands(demo):
+    db = demo / "demo.duckdb"
+    mapped = run_mapper("map", "--campaign", NEW, "--format", "json", db=db)
+    assert mapped.returncode == 0, mapped.stderr
+    names = {row["parameter"] for row in json.loads(mapped.stdout)}
+    assert names == {"gain", "time_constant", "dead_time", "gain_over_time_constant"}
+    compared = run_mapper("compare", OLD, NEW, db=db)
+    assert compared.returncode == 0, compared.stderr
+    assert "Gain" in compared.stdout
+    missing = run_mapper("compare", OLD, "no such campaign", db=db)
+    assert missing.returncode == 1 and "campaigns stored" in missing.stderr

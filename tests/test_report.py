@@ -1,0 +1,235 @@
+"""HTML report: content, escaping, PNG output, and rendering in a headless browser offline."""
+
+from __future__ import annotations
+
+import json
+import re
+import shutil
+import subprocess
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from mapper import report
+from mapper.errors import MapperError
+
+EVIL = "<script>alert(1)</script>"
+BREAKOUT = "</script><script>alert(2)</script>"
+PERIOD = 0.5
+STEP_TIME = 20.0
+
+
+def fopdt_test(test_id, level, direction, gain, time_constant, dead_time, *, quality="good",
+               flags=(), note="", seed=0):
+    """Synthetic test: exact FOPDT step response plus white noise (textbook response)."""
+    step = 5.0 if direction == "up" else -5.0
+    t = np.arange(600) * PERIOD
+    u = np.where(t >= STEP_TIME, 40.0 + step, 40.0)
+    elapsed = np.clip(t - STEP_TIME - dead_time, 0.0, None)
+    ideal = level + gain * step * (1.0 - np.exp(-elapsed / time_constant))
+    y = ideal + np.random.default_rng(seed).normal(0.0, 0.05, len(t))
+    row = dict(test_id=test_id, campaign="spring", file=f"{test_id}.csv", level=level,
+               direction=direction, input_step=step, model="fopdt", gain=gain,
+               gain_lo=gain * 0.95, gain_hi=gain * 1.05, time_constant=time_constant,
+               time_constant_lo=time_constant * 0.9, time_constant_hi=time_constant * 1.1,
+               dead_time=dead_time, dead_time_lo=dead_time - 0.2, dead_time_hi=dead_time + 0.2,
+               nrmse=0.01, quality=quality, flags=list(flags))
+    return {**row, "note": note, "t": t, "u": u, "y": y, "fitted": ideal, "step_time": STEP_TIME}
+
+
+@pytest.fixture(scope="module")
+def inputs():
+    tests = [
+        fopdt_test("G20up", 20.0, "up", 1.4, 12.0, 3.0, seed=1),
+        fopdt_test("G50down", 50.0, "down", 2.0, 15.0, 3.0, seed=2),
+        fopdt_test(EVIL, 80.0, "up", 2.6, 18.0, 3.0, quality="suspect", flags=["disturbed"],
+                   note=BREAKOUT, seed=3),
+        fopdt_test("R80down", 80.0, "down", 2.6, 18.0, 3.0, quality="rejected",
+                   flags=["not_settled"], seed=4),
+    ]
+    params = pd.DataFrame([{k: v for k, v in t.items() if k not in ("note", "t", "u", "y",
+                                                                    "fitted", "step_time")}
+                           for t in tests])
+    levels = np.linspace(20, 80, 7)
+    trend = pd.DataFrame({"parameter": "gain", "level": levels, "value": 1 + levels / 50,
+                          "lo": 0.9 * (1 + levels / 50), "hi": 1.1 * (1 + levels / 50)})
+    verdict = {
+        "decision": "schedule",
+        "reasons": ["Ms of the single controller reaches 2.4 at level 80, above the limit 2.0."],
+        "variation": {"gain": {"min": 1.4, "max": 2.6, "ratio": 1.86, "significant": True}},
+        "controller": {"kc": 1.2, "ti": 15.0},
+        "points": [{"level": 20.0, "ms": 1.5, "gain_margin": 3.1, "phase_margin_deg": 62.0,
+                    "slowdown": 1.0},
+                   {"level": 80.0, "ms": 2.4, "gain_margin": 1.8, "phase_margin_deg": 38.0,
+                    "slowdown": 1.6}],
+        "schedule": [{"level": 20.0, "level_from": 20.0, "level_to": 50.0, "kc": 1.7, "ti": 12.0,
+                      "ti_min": 0.2},
+                     {"level": 80.0, "level_from": 50.0, "level_to": 80.0, "kc": 1.0, "ti": 18.0,
+                      "ti_min": 0.3}],
+        "schedule_points": [{"level": 20.0, "ms": 1.59}, {"level": 80.0, "ms": 1.59}],
+        "ms_max": 2.0,
+    }
+    return dict(
+        campaign={"name": f"Feed tank {EVIL}", "n_tests": len(tests),
+                  "units": {"input": "%", "output": "cm"}, "notes": ["night shift", EVIL]},
+        params=params, trend=trend,
+        map_summary=[{"parameter": "gain", "shape": "linear", "min": 1.4, "max": 2.6,
+                      "ratio": 1.86, "significant": True, "reason": "outside the 95 % band"}],
+        verdict=verdict,
+        comparisons=[{"kind": "directions", "sentence": f"Up and down agree at level 80 {EVIL}."}],
+        tests=tests)
+
+
+@pytest.fixture(scope="module")
+def written(inputs, tmp_path_factory):
+    path = tmp_path_factory.mktemp("report") / "report.html"
+    info = report.write_report(path, **inputs)
+    return info, path.read_text(encoding="utf-8")
+
+
+# ------------------------------------------------------------- content
+def test_report_info_and_sections(written):
+    info, text = written
+    assert info.size_bytes == info.path.stat().st_size > 0
+    assert info.png_files == ()
+    # map, schedule, margins, overlay and four tests
+    assert info.n_charts == 8
+    order = [text.index(f'<section id="{s}">') for s in
+             ("summary", "verdict", "map", "comparisons", "schedule", "tests", "methods", "cautions")]
+    assert order == sorted(order)
+    assert "A gain schedule is needed" in text
+    assert "Ms of the single controller reaches 2.4" in text
+
+
+def test_report_lists_rejected_then_suspect_then_good(written):
+    _, text = written
+    positions = [text.index(f"<h3>{name} ") for name in
+                 ("R80down", report.html.escape(EVIL), "G20up", "G50down")]
+    assert positions == sorted(positions)
+
+
+def test_report_names_methods_sources_and_cautions(written):
+    _, text = written
+    for source in ("63.2 %", "Smith, C. L. (1972)", "Sundaresan, K. R. and Krishnaswamy, P. R. (1978)",
+                   "Åström, K. J. and Hägglund, T. (1995)", "zero-order",
+                   "Skogestad, S. (2003)", "exact frequency response"):
+        assert source in text
+    for caution in ("Agree every step size", "alarm and trip limits", "before relying on it",
+                    "Site procedures"):
+        assert caution in text
+    # tuning is handed over in the verdict and the schedule sections: cautions beside both
+    assert text.count('class="caution"') >= 3
+
+
+def test_report_escapes_user_text(written):
+    _, text = written
+    assert "alert(1)" in text and "alert(2)" in text
+    assert EVIL not in text and BREAKOUT not in text
+    assert "&lt;script&gt;alert(1)&lt;/script&gt;" in text
+    assert "&lt;/script&gt;&lt;script&gt;alert(2)&lt;/script&gt;" in text
+    # every script element is ours: the two inline ones, the bundle, the renderer, the specs
+    opening = re.findall(r"<script[^>]*>", text)
+    assert set(opening) <= {"<script>"} | {f'<script type="application/json" id="spec-{i}">'
+                                            for i in range(8)}
+
+
+def test_report_embedded_specs_parse_and_keep_the_text(written):
+    _, text = written
+    blocks = re.findall(r'<script type="application/json" id="spec-(\d+)">(.*?)</script>', text,
+                        flags=re.S)
+    assert [int(i) for i, _ in blocks] == list(range(8))
+    specs = [json.loads(body) for _, body in blocks]
+    titles = [s["title"]["text"] for s in specs if isinstance(s.get("title"), dict)]
+    assert any(t.startswith(EVIL) for t in titles)  # restored exactly by JSON.parse
+    assert all("<" not in body for _, body in blocks)
+
+
+def test_report_needs_no_network(written):
+    _, text = written
+    markup = re.sub(r"<script[^>]*>.*?</script>", "", text, flags=re.S)  # the page outside scripts
+    assert not re.search(r"<(script|link|img|iframe)[^>]+(src|href)=", markup)
+    assert not re.search(r"<script[^>]+src=", text)
+    assert "vegaEmbed" in text and "window.vega=" in text  # the libraries are inline
+
+
+def test_safe_json_round_trip():
+    value = {"a": "</script><!-- & \u2028", "b": [1.5, None, True]}
+    text = report.safe_json(value)
+    assert "<" not in text and ">" not in text and "&" not in text and "\u2028" not in text
+    assert json.loads(text) == value
+
+
+def test_report_without_verdict_or_tests(tmp_path):
+    info = report.write_report(tmp_path / "empty.html", campaign={"name": "empty"}, params=None)
+    text = info.path.read_text(encoding="utf-8")
+    assert info.n_charts == 0
+    assert "No verdict was given" in text and "Every test (0)" in text
+
+
+def test_report_unwritable_path_raises_mapper_error(tmp_path, inputs):
+    with pytest.raises(MapperError, match="cannot write the report"):
+        report.write_report(tmp_path / "missing" / "r.html", **inputs)
+
+
+def test_png_dir_writes_every_chart(inputs, tmp_path):
+    info = report.write_report(tmp_path / "r.html", png_dir=tmp_path / "png", **inputs)
+    assert len(info.png_files) == info.n_charts == 8
+    for png in info.png_files:
+        assert png.parent == tmp_path / "png"
+        assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification)
+        assert "<" not in png.name and "/" not in png.stem
+    assert {"operating_map.png", "overlay.png", "schedule.png", "margins.png"} <= {
+        p.name for p in info.png_files}
+
+
+# ------------------------------------------------------------- browser
+def find_browser() -> str:
+    for name in ("/usr/bin/chromium", "chromium", "chromium-browser", "google-chrome"):
+        found = shutil.which(name)
+        if found:
+            return found
+    pytest.fail("no Chromium found: install it (apt-get install chromium) to run the report test")
+
+
+def render_offline(page: Path, profile: Path) -> tuple[str, str]:
+    """Open ``page`` in headless Chromium with the network blocked; return (DOM, log)."""
+    command = [
+        find_browser(), "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic",
+        "--no-first-run", "--disable-background-networking", "--disable-component-update",
+        "--disable-sync", f"--user-data-dir={profile}",
+        "--host-resolver-rules=MAP * ~NOTFOUND", "--proxy-server=127.0.0.1:9",
+        "--enable-logging=stderr", "--v=0", "--virtual-time-budget=20000",
+        "--dump-dom", page.resolve().as_uri(),
+    ]
+    done = subprocess.run(command, capture_output=True, text=True, timeout=180, check=False)
+    assert done.returncode == 0, done.stderr[-2000:]
+    return done.stdout, done.stderr
+
+
+def test_report_renders_offline_in_a_browser(written, tmp_path):
+    info, _ = written
+    dom, log = render_offline(info.path, tmp_path / "profile")
+    body = re.search(r"<body[^>]*>", dom).group(0)
+    assert f'data-charts-rendered="{info.n_charts}"' in body
+    assert 'data-charts-failed="0"' in body and 'data-charts-complete="yes"' in body
+    assert "data-script-errors" not in re.search(r"<html[^>]*>", dom).group(0)
+    # our page logs nothing when all is well; any console line is an error or a warning
+    console = [line for line in log.splitlines() if "CONSOLE" in line]
+    assert console == []
+    assert len(re.findall(r"<svg\b", dom)) >= info.n_charts
+    # the hostile note and name are text on the page, never elements
+    assert "&lt;/script&gt;&lt;script&gt;alert(2)&lt;/script&gt;" in dom
+    assert "&lt;script&gt;alert(1)&lt;/script&gt;" in dom
+    assert "<script>alert(" not in dom
+
+
+def test_browser_helper_sees_script_errors(tmp_path):
+    # the check above could pass vacuously if errors went unseen: make one on purpose
+    page = tmp_path / "broken.html"
+    page.write_text("<html><head><script>" + report._ERROR_HOOK + "</script></head><body>"
+                    "<script>notDefinedAnywhere();</script></body></html>", encoding="utf-8")
+    dom, log = render_offline(page, tmp_path / "profile")
+    assert 'data-script-errors="1"' in dom
+    assert any("CONSOLE" in line and "notDefinedAnywhere" in line for line in log.splitlines())
