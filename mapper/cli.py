@@ -103,14 +103,18 @@ def import_command(
     period: Optional[float] = typer.Option(None, "--period", help="grid period in seconds for irregular logs"),
 ) -> None:
     """Bring a campaign folder or loose data files into the store."""
-    from .ingest import import_sources
+    from .ingest import import_campaigns, prepare_sources
     if time_unit not in ("s", "min", "h"):
         raise typer.BadParameter("use s, min or h", param_hint="--time-unit")
+    # campaign files are checked before the store is opened, so a faulty one leaves it untouched
+    campaigns = prepare_sources([str(s) for s in sources], time_column=time, input_column=input,
+                                output_column=output, level=level, campaign=campaign,
+                                time_unit=time_unit, period=period)
     with _store() as store:
-        summary = import_sources(store, [str(s) for s in sources], time_column=time, input_column=input,
-                                 output_column=output, level=level, campaign=campaign,
-                                 time_unit=time_unit, period=period, progress=_progress("importing"))
+        summary = import_campaigns(store, campaigns, progress=_progress("importing"))
     _say(summary.lines())
+    for line in summary.refusals():
+        sys.stderr.write(f"mapper: {line}\n")
     if not summary.ok:
         raise typer.Exit(1)
 

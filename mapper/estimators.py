@@ -40,7 +40,7 @@ __all__ = [
 
 @dataclass(frozen=True)
 class Estimate:
-    """Raw estimate in seconds; ``covariance`` over (offset, gain, tau, theta) or None."""
+    """Raw estimate in seconds (``time_constant`` None for the integrating model)."""
 
     model: str
     gain: float

@@ -58,11 +58,15 @@ def fit_one(job: tuple) -> dict:
 
 
 def _jobs(store: Store, test_ids: list[int], method: str) -> Iterator[tuple]:
-    for test_id in test_ids:
-        info = store.test_info(test_id)
-        t, u, y = store.samples(test_id)
-        input_range, output_range = _ranges(info)
-        yield (test_id, t, u, y, input_range, output_range, method)
+    # read in batches: few queries, yet never the whole campaign in memory
+    for first in range(0, len(test_ids), BATCH):
+        chunk = test_ids[first:first + BATCH]
+        infos = store.fit_inputs(chunk)
+        samples = store.samples_many(chunk)
+        for test_id in chunk:
+            t, u, y = samples[test_id]
+            input_range, output_range = _ranges(infos.get(test_id, {}))
+            yield (test_id, t, u, y, input_range, output_range, method)
 
 
 def fit_store(store: Store, *, refit: bool = False, method: str = "least_squares",

@@ -204,7 +204,12 @@ def identify(
         return _rejected(method, flags + ["step_at_end"], settings, step, y)
     if np.ptp(y) == 0.0:
         return _rejected(method, flags + ["no_response"], settings, step, y)
-    return _identify_step(t, u, y, step, method, flags, settings, input_range, output_range)
+    try:
+        with np.errstate(all="ignore"):
+            return _identify_step(t, u, y, step, method, flags, settings, input_range, output_range)
+    except (ValueError, ArithmeticError, np.linalg.LinAlgError):
+        # numbers beyond what the arithmetic can carry: a rejected fit with a reason, not a crash
+        return _rejected(method, flags + ["numerical_failure"], settings, step, y)
 
 
 def _identify_step(t, u, y, step, method, flags, settings, input_range, output_range):

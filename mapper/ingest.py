@@ -27,7 +27,7 @@ MIN_SAMPLES = 20
 MAX_MAGNITUDE = 1e12
 _NUMERIC_TYPES = ("DOUBLE", "FLOAT", "BIGINT", "INTEGER", "SMALLINT", "TINYINT", "HUGEINT",
                   "UBIGINT", "UINTEGER", "USMALLINT", "UTINYINT", "DECIMAL", "REAL")
-_ZONE = re.compile(r"(Z|[+-]\d\d:?\d\d)$")
+_ZONE = re.compile(r"(?:Z|[+-]\d\d:?\d\d)$")
 _DECIMAL_COMMA = re.compile(r"^\s*[-+]?\d*,\d+([eE][-+]?\d+)?\s*$")
 
 
@@ -98,9 +98,11 @@ class ImportSummary:
         for o in self.outcomes:
             if o.status == "imported" and o.tests > 1:
                 text.append(f"  {o.file}: {o.tests} input moves, one test each")
-            if o.status == "refused":
-                text.append(f"  refused {o.message}")
         return text
+
+    def refusals(self) -> list[str]:
+        """One message per refused file (what, where, the value seen, and a hint)."""
+        return [o.message for o in self.outcomes if o.status == "refused"]
 
 
 # -- reading ------------------------------------------------------------------------------
@@ -221,7 +223,8 @@ def read_signals(path: Path, time_column: str, input_column: str, output_column:
         y = np.asarray(scanned.values[output_column], dtype=float)
         raw_time = scanned.values[time_column]
         # with another delimiter a comma in a text time column can only be a decimal comma
-        decimal_comma = (scanned.delimiter or ",") != ","
+        decimal_comma = (kinds[time_column].startswith("VARCHAR")
+                         and (scanned.delimiter or ",") != ",")
     else:
         text = scan_file(path, columns, as_text=True)
         values = {c: _as_objects(text.values[c]) for c in columns}
@@ -263,7 +266,7 @@ def read_signals(path: Path, time_column: str, input_column: str, output_column:
     if kinds[time_column].startswith("TIMESTAMP WITH TIME ZONE"):
         written = scan_first_text(path, time_column)
         match = _ZONE.search(written or "")
-        zone = match.group(1) if match else "UTC"
+        zone = match.group(0) if match else "UTC"
     _check_time(path, time_column, t, offset)
     if n < MIN_SAMPLES:
         raise DataError(f"{path}: only {n} samples; at least {MIN_SAMPLES} are needed to hold a step",
@@ -473,28 +476,94 @@ def _hash_settings(campaign: Campaign, entry: TestEntry) -> dict:
             "period": campaign.period, "campaign": campaign.name}
 
 
+BATCH_FILES = 32  # files written per transaction
+BATCH_SAMPLES = 500_000  # ...or fewer, so a batch never holds much in memory
+
+
 def import_campaign(store: Store, campaign: Campaign,
                     progress: Callable[[int, int, str], None] | None = None) -> ImportSummary:
-    """Import every file of ``campaign`` into ``store``; one transaction per file.
+    """Import every file of ``campaign`` into ``store``.
 
-    A file whose content (and settings) is already stored is skipped; a refused file does
-    not stop the others and leaves the store as it was.
+    Each file is read and checked completely before anything of it is written; checked
+    files are written in batches, each batch in one transaction, so every file is stored
+    whole or not at all. A file whose content (and settings) is already stored is skipped;
+    a refused file does not stop the others and leaves the store as it was.
     """
     summary = ImportSummary()
     total = len(campaign.tests)
+    pending: list[TestWindow] = []
+    pending_outcomes: list[FileOutcome] = []
+    pending_hashes: set[str] = set()
+
+    def flush() -> None:
+        if pending:
+            store.add_tests(campaign, pending)
+        summary.outcomes.extend(pending_outcomes)
+        pending.clear()
+        pending_outcomes.clear()
+        pending_hashes.clear()
+
+    hashes: dict[int, str] = {}
+    for number, entry in enumerate(campaign.tests, start=1):
+        try:
+            hashes[number] = file_hash(entry.path, _hash_settings(campaign, entry))
+        except OSError:
+            pass  # reported below when the file is read
+    stored = store.stored_sources(list(hashes.values()))
     for number, entry in enumerate(campaign.tests, start=1):
         if progress:
             progress(number, total, entry.file)
         try:
-            source_hash = file_hash(entry.path, _hash_settings(campaign, entry))
-            if store.has_source(source_hash):
+            source_hash = hashes.get(number) or file_hash(entry.path, _hash_settings(campaign, entry))
+            if source_hash in pending_hashes or source_hash in stored:
                 summary.outcomes.append(FileOutcome(entry.file, "already stored"))
                 continue
             windows = windows_for_file(entry, campaign, source_hash)
-            store.add_tests(campaign, windows)
-            summary.outcomes.append(FileOutcome(entry.file, "imported", tests=len(windows)))
         except DataError as exc:
             summary.outcomes.append(FileOutcome(entry.file, "refused", message=str(exc)))
+            continue
+        pending.extend(windows)
+        pending_hashes.add(source_hash)
+        pending_outcomes.append(FileOutcome(entry.file, "imported", tests=len(windows)))
+        if len(pending_outcomes) >= BATCH_FILES or sum(len(w.t) for w in pending) >= BATCH_SAMPLES:
+            flush()
+    flush()
+    return summary
+
+
+def prepare_sources(sources: Sequence[str | Path], *, time_column: str | None = None,
+                    input_column: str | None = None, output_column: str | None = None,
+                    level: float | None = None, campaign: str | None = None,
+                    time_unit: str = "s", period: float | None = None) -> list[Campaign]:
+    """Campaigns for the named folders and loose files, checked before any store is opened.
+
+    Raises
+    ------
+    CampaignFileError, DataError, MapperError
+        For a faulty campaign file, a missing file, or loose files without column names.
+    """
+    folders = [Path(s) for s in sources if Path(s).is_dir() or Path(s).name == "campaign.toml"]
+    files = [s for s in sources if Path(s) not in folders]
+    campaigns = [load_campaign(folder) for folder in folders]
+    if files:
+        if not (time_column and input_column and output_column):
+            raise MapperError(
+                f"{files[0]}: loose data files need --time, --input and --output column names",
+                hint="or import a campaign folder holding a campaign.toml")
+        campaigns.append(campaign_from_options(
+            files, time_column=time_column, input_column=input_column, output_column=output_column,
+            level=level, campaign=campaign, time_unit=time_unit, period=period))
+    if not campaigns:
+        raise CampaignFileError("nothing to import", hint="name a campaign folder or data files")
+    return campaigns
+
+
+def import_campaigns(store: Store, campaigns: Sequence[Campaign],
+                     progress: Callable[[int, int, str], None] | None = None) -> ImportSummary:
+    """Import checked campaigns (from :func:`prepare_sources`) into ``store``."""
+    summary = ImportSummary()
+    for item in campaigns:
+        summary.outcomes.extend(import_campaign(store, item, progress).outcomes)
     return summary
 
 
@@ -514,30 +583,10 @@ def campaign_from_options(files: Sequence[str | Path], *, time_column: str, inpu
                     period=period, tests=tuple(entries))
 
 
-def import_sources(store: Store, sources: Sequence[str | Path], *, time_column: str | None = None,
-                   input_column: str | None = None, output_column: str | None = None,
-                   level: float | None = None, campaign: str | None = None,
-                   time_unit: str = "s", period: float | None = None,
-                   progress: Callable[[int, int, str], None] | None = None) -> ImportSummary:
-    """Import campaign folders and/or loose data files.
+def import_sources(store: Store, sources: Sequence[str | Path], *,
+                   progress: Callable[[int, int, str], None] | None = None, **options) -> ImportSummary:
+    """Import campaign folders and/or loose data files (options as :func:`prepare_sources`).
 
-    Folders must hold a ``campaign.toml``; loose files need the three column names.
     Campaign-file errors are raised before anything is stored.
     """
-    folders = [Path(s) for s in sources if Path(s).is_dir() or Path(s).name == "campaign.toml"]
-    files = [s for s in sources if Path(s) not in folders]
-    campaigns = [load_campaign(folder) for folder in folders]
-    if files:
-        if not (time_column and input_column and output_column):
-            raise MapperError(
-                f"{files[0]}: loose data files need --time, --input and --output column names",
-                hint="or import a campaign folder holding a campaign.toml")
-        campaigns.append(campaign_from_options(
-            files, time_column=time_column, input_column=input_column, output_column=output_column,
-            level=level, campaign=campaign, time_unit=time_unit, period=period))
-    if not campaigns:
-        raise CampaignFileError("nothing to import", hint="name a campaign folder or data files")
-    summary = ImportSummary()
-    for item in campaigns:
-        summary.outcomes.extend(import_campaign(store, item, progress).outcomes)
-    return summary
+    return import_campaigns(store, prepare_sources(sources, **options), progress)

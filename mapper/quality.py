@@ -49,6 +49,7 @@ REJECTING_FLAGS = frozenset(
         "response_below_noise",
         "dead_time_beyond_record",
         "fit_failed",
+        "numerical_failure",
     }
 )
 
@@ -63,6 +64,7 @@ FLAG_TEXT = {
     "response_below_noise": "The output change is not larger than its noise band.",
     "dead_time_beyond_record": "The response starts at or after the end of the record.",
     "fit_failed": "The model fit did not converge to a usable answer.",
+    "numerical_failure": "The values are beyond what the fit's arithmetic can carry.",
     "drift_before_step": "The output drifted before the step.",
     "not_settled": "The record ends before dead time + 4 time constants after the step.",
     "input_clipped": "The input sat at an instrument limit or was flat-topped.",

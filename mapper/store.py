@@ -115,8 +115,18 @@ class ScannedFile:
     columns: tuple[str, ...]
     types: dict[str, str]
     values: dict[str, np.ndarray]
-    delimiter: str | None = None
     first_time_text: str | None = None
+
+    @property
+    def delimiter(self) -> str | None:
+        """The CSV delimiter DuckDB's sniffer finds (None for Parquet); asked only when needed."""
+        if self.path.suffix.lower() in (".parquet", ".pq"):
+            return None
+        try:
+            return _reader_connection().execute(
+                "SELECT delimiter FROM sniff_csv(?)", [str(self.path)]).fetchone()[0]
+        except duckdb.Error:
+            return None
 
 
 def default_store_path() -> Path:
@@ -137,9 +147,15 @@ def _connect(path: Path, read_only: bool, wait: float) -> duckdb.DuckDBPyConnect
             return duckdb.connect(str(path), read_only=read_only)
         except duckdb.IOException as exc:
             text = str(exc)
-            if "lock" not in text.lower():
+            if "permission" in text.lower():
                 raise StoreError(f"{path}: cannot open the store: {text.splitlines()[0]}",
                                  hint="check the file and folder permissions") from None
+            if "lock" not in text.lower():  # a damaged or foreign file that looks like DuckDB
+                raise NotAStoreError(
+                    f"{path}: not a mapper store (cannot be opened: {text.splitlines()[0]}); "
+                    "the file was left untouched",
+                    hint="give --db a new file name; if this is your store, restore it from a copy",
+                ) from None
             if time.monotonic() >= deadline:
                 raise StoreInUseError(
                     f"{path}: store in use by another mapper process (waited {wait:.0f} s)",
@@ -265,13 +281,20 @@ class Store:
              campaign.input_unit, campaign.output_unit, low_in, high_in, low_out, high_out],
         ).fetchone()[0])
 
+    def stored_sources(self, source_hashes: Sequence[str]) -> set[str]:
+        """The content hashes among ``source_hashes`` that are already stored."""
+        rows = self.connection.execute(
+            "SELECT DISTINCT source_hash FROM tests WHERE source_hash IN (SELECT unnest(?::VARCHAR[]))",
+            [list(source_hashes)]).fetchall()
+        return {r[0] for r in rows}
+
     def has_source(self, source_hash: str) -> bool:
         """True when a file with this content hash is already stored."""
         return self.connection.execute(
             "SELECT count(*) FROM tests WHERE source_hash = ?", [source_hash]).fetchone()[0] > 0
 
     def add_tests(self, campaign, windows: Sequence) -> list[int]:
-        """Store the windows of one file (each becomes a test) in one transaction.
+        """Store test windows (of one or several files) in one transaction.
 
         ``windows`` are :class:`mapper.ingest.TestWindow` objects. Returns the new ids.
         """
@@ -290,17 +313,20 @@ class Store:
                      window.level_estimate, window.direction, window.input_step, window.note,
                      list(window.flags)],
                 ).fetchone()[0])
-                frame = pd.DataFrame({
-                    "test_id": np.full(len(window.t), test_id, dtype=np.int32),
-                    "sample_index": np.arange(len(window.t), dtype=np.int32),
-                    "t": window.t, "u": window.u, "y": window.y,
-                })
-                con.register("incoming_samples", frame)
-                try:
-                    con.execute("INSERT INTO samples SELECT * FROM incoming_samples")
-                finally:
-                    con.unregister("incoming_samples")
                 ids.append(test_id)
+            # all samples of the batch in one columnar insert
+            frame = pd.DataFrame({
+                "test_id": np.concatenate([np.full(len(w.t), i, dtype=np.int32) for i, w in zip(ids, windows)]),
+                "sample_index": np.concatenate([np.arange(len(w.t), dtype=np.int32) for w in windows]),
+                "t": np.concatenate([w.t for w in windows]),
+                "u": np.concatenate([w.u for w in windows]),
+                "y": np.concatenate([w.y for w in windows]),
+            })
+            con.register("incoming_samples", frame)
+            try:
+                con.execute("INSERT INTO samples SELECT * FROM incoming_samples")
+            finally:
+                con.unregister("incoming_samples")
         return ids
 
     def campaign_info(self, name: str | None = None) -> list[dict]:
@@ -349,18 +375,54 @@ class Store:
     # -- fits -----------------------------------------------------------------------------
     def save_fits(self, rows: Sequence[dict]) -> None:
         """Store fit rows (``FitResult.to_row()`` plus ``test_id``) in one transaction."""
+        if not rows:
+            return
+        columns: dict[str, list] = {"test_id": [int(r["test_id"]) for r in rows]}
+        for name in FIT_VALUE_COLUMNS:
+            values = [r.get(name) for r in rows]
+            columns[name] = [None if isinstance(v, float) and not np.isfinite(v) else v for v in values]
+        columns["flags"] = [list(r.get("flags") or []) for r in rows]
+        columns["notes"] = [list(r.get("notes") or []) for r in rows]
+        columns["settings"] = [json.dumps(r.get("settings") or {}, default=str) for r in rows]
+        columns["tool_version"] = [__version__] * len(rows)
+        frame = pd.DataFrame(columns)
+        for name in FIT_VALUE_COLUMNS:
+            if name not in ("method", "model", "quality"):
+                frame[name] = pd.to_numeric(frame[name], errors="coerce").astype(float)
+        names = ", ".join(frame.columns)  # constant column names, no user text
         with self.transaction() as con:
-            for row in rows:
-                values = [row.get(name) for name in FIT_VALUE_COLUMNS]
-                values = [None if isinstance(v, float) and not np.isfinite(v) else v for v in values]
-                con.execute("DELETE FROM fits WHERE test_id = ?", [row["test_id"]])
-                con.execute(
-                    "INSERT INTO fits (test_id, " + ", ".join(FIT_VALUE_COLUMNS) +
-                    ", flags, notes, settings, tool_version) VALUES (" +
-                    ", ".join(["?"] * (len(FIT_VALUE_COLUMNS) + 5)) + ")",
-                    [row["test_id"], *values, list(row.get("flags") or []),
-                     list(row.get("notes") or []),
-                     json.dumps(row.get("settings") or {}, default=str), __version__])
+            con.register("incoming_fits", frame)
+            try:
+                con.execute("DELETE FROM fits WHERE test_id IN (SELECT test_id FROM incoming_fits)")
+                con.execute(f"INSERT INTO fits ({names}) SELECT {names} FROM incoming_fits")
+            finally:
+                con.unregister("incoming_fits")
+
+    def fit_inputs(self, test_ids: Sequence[int]) -> dict[int, dict]:
+        """Instrument ranges per test, for many tests in one query."""
+        rows = self.connection.execute(
+            "SELECT t.test_id, c.input_range_low, c.input_range_high, c.output_range_low, "
+            "c.output_range_high FROM tests t JOIN campaigns c USING (campaign_id) "
+            "WHERE t.test_id IN (SELECT unnest(?::INTEGER[]))", [list(map(int, test_ids))]).fetchall()
+        keys = ("input_range_low", "input_range_high", "output_range_low", "output_range_high")
+        return {int(r[0]): dict(zip(keys, r[1:])) for r in rows}
+
+    def samples_many(self, test_ids: Sequence[int]) -> dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]]:
+        """Samples of several tests in one query (a batch, never the whole campaign)."""
+        arrays = self.connection.execute(
+            "SELECT test_id, t, u, y FROM samples WHERE test_id IN (SELECT unnest(?::INTEGER[])) "
+            "ORDER BY test_id, sample_index", [list(map(int, test_ids))]).fetchnumpy()
+        ids = np.asarray(arrays["test_id"])
+        result = {}
+        if len(ids) == 0:
+            return result
+        cuts = np.flatnonzero(np.diff(ids)) + 1
+        starts = np.concatenate([[0], cuts])
+        ends = np.concatenate([cuts, [len(ids)]])
+        t, u, y = (np.asarray(arrays[k], float) for k in ("t", "u", "y"))
+        for a, b in zip(starts, ends):
+            result[int(ids[a])] = (t[a:b].copy(), u[a:b].copy(), y[a:b].copy())
+        return result
 
     def clear_fits(self) -> None:
         with self.transaction() as con:
@@ -436,18 +498,21 @@ def scan_file(path: Path, columns: Sequence[str], *, as_text: bool = False,
     else:
         options = ", all_varchar = true" if as_text else ""
         options += ", decimal_separator = ','" if decimal_comma else ""
-        relation_sql, args = f"read_csv(?, sample_size = -1{options})", [str(path)]
+        relation_sql, args = f"read_csv(?{options})", [str(path)]
     try:
-        described = con.execute(f"DESCRIBE SELECT * FROM {relation_sql}", args).fetchall()
+        cursor = con.execute(f"SELECT * FROM {relation_sql}", args)
+        described = [(d[0], str(d[1])) for d in cursor.description]
     except duckdb.Error as exc:
         text = str(exc)
         if "not utf-8 encoded" in text.lower():
             where = text.splitlines()[0].split("Error: ", 1)[-1]
             raise DataError(f"{path}: holds bytes that are not UTF-8 text ({where})",
                             hint="save or export the file again as UTF-8 text") from None
-        raise DataError(f"{path}: cannot be read as {'Parquet' if 'parquet' in relation_sql else 'CSV'}: "
+        parquet = suffix in (".parquet", ".pq")
+        raise DataError(f"{path}: cannot be read as {'Parquet' if parquet else 'CSV'}: "
                         f"{text.splitlines()[0]}",
-                        hint="check that the file is a CSV or Parquet export and not empty") from None
+                        hint="the Parquet file is damaged or not Parquet; export it again" if parquet
+                        else "check that the file is a CSV export and not empty") from None
     present = tuple(r[0] for r in described)
     types = {r[0]: r[1] for r in described}
     missing = [c for c in columns if c not in present]
@@ -459,26 +524,23 @@ def scan_file(path: Path, columns: Sequence[str], *, as_text: bool = False,
     if len(present) < 2 and not as_text:
         raise DataError(f"{path}: only one column ('{present[0]}') was found",
                         hint="check the delimiter; comma, semicolon and tab are recognised")
-    wanted = list(dict.fromkeys(columns))
-    column_sql = ", ".join(f'"{c}"' for c in wanted)  # names checked above against the header
-    if any('"' in c for c in wanted):
-        raise DataError(f"{path}: column names with double quotes are not supported")
-    if as_text and suffix not in (".parquet", ".pq"):
-        column_sql = ", ".join(f'"{c}"::VARCHAR' for c in wanted)
+    if any('"' in c for c in columns):
+        raise DataError(f"{path}: column names with double quotes are not supported",
+                        hint="rename the column in the header")
     try:
-        result = con.execute(f"SELECT {column_sql} FROM {relation_sql}", args).fetchnumpy()
+        result = cursor.fetchnumpy()  # one pass through DuckDB's reader, columnar
+    except duckdb.ConversionException:
+        if as_text or suffix in (".parquet", ".pq"):
+            raise DataError(f"{path}: cannot be read", hint="export the file again") from None
+        # text beyond the sniffer's sample: read as text so the bad cell can be named
+        return scan_file(path, columns, as_text=True)
     except duckdb.Error as exc:
         hint = ("the Parquet file is damaged; export it again" if suffix in (".parquet", ".pq")
                 else "look for a stray line or an unquoted delimiter in the file")
         raise DataError(f"{path}: cannot be read: {str(exc).splitlines()[0]}", hint=hint) from None
-    values = {c: result[k] for c, k in zip(wanted, result.keys())}
-    delimiter = None
-    if suffix not in (".parquet", ".pq"):
-        try:
-            delimiter = con.execute("SELECT delimiter FROM sniff_csv(?)", [str(path)]).fetchone()[0]
-        except duckdb.Error:
-            delimiter = None
-    return ScannedFile(path=path, columns=present, types=types, values=values, delimiter=delimiter)
+    wanted = list(dict.fromkeys(columns))
+    values = {c: result[c] for c in wanted}
+    return ScannedFile(path=path, columns=present, types=types, values=values)
 
 
 def scan_first_text(path: Path, column: str) -> str | None:

@@ -145,6 +145,10 @@ def _points(opmap: OperatingMap, rule: str, closed_loop_time) -> tuple[list, lis
         gain = opmap.value("gain", level, significant_only=True)[0]
         tau = opmap.value("time_constant", level, significant_only=True)[0] if opmap.model == "fopdt" else None
         theta = max(opmap.value("dead_time", level, significant_only=True)[0], 0.0)
+        if tau is not None and not tau > 0:
+            tau = opmap.trend("time_constant").constant
+            notes.append(f"time-constant trend not positive at {opmap.against} {format_level(level)}: "
+                         f"its mean {tau:.4g} s used there")
         tau_c = closed_loop_time
         if tau_c is None and theta <= 1e-9 * (tau or 1.0):
             hi = opmap.value("dead_time", level)[2]
@@ -329,6 +333,10 @@ def decide(params: pd.DataFrame, *, ms_max: float = 2.0, slowdown_max: float = 2
     summary = {row["parameter"]: row for row in opmap.summary()}
     variation = {name: {k: row[k] for k in ("min", "max", "ratio", "significant")} for name, row in summary.items()}
 
+    if len({math.copysign(1.0, p.gain) for p in points}) > 1:
+        raise DataError("the process gain changes sign across the tested range; no PI loop with one "
+                        "controller action can serve it",
+                        hint="check the tests near the sign change (`mapper params`); split the range")
     controller, _ = _search(points, ms_max, slowdown_max)
     rows = _evaluate(controller, points, against)
     single = _serves(rows, ms_max, slowdown_max)

@@ -53,7 +53,8 @@ def write_campaign(folder: Path, tests: list[dict], name: str = "Trial campaign"
         file = spec.pop("file", f"step_{i}.csv")
         level = spec.pop("level", None)
         note = spec.pop("note", None)
-        write_step_csv(folder / file, seed=i, **spec)
+        spec.setdefault("seed", i)
+        write_step_csv(folder / file, **spec)
         text += f'\n[[tests]]\nfile = "{file}"\n'
         if level is not None:
             text += f"level = {level}\n"

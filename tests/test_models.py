@@ -92,12 +92,16 @@ def test_sensitivities_match_finite_differences(dead_time):
     K, tau = 2.0, 6.0
     S = fopdt_sensitivities(u, T, K, tau, dead_time)
     h = 1e-6
+
+    def sim(gain, time_constant, dead):
+        return simulate_fopdt(u, T, gain, time_constant, dead)
+
     ref = np.column_stack(
         [
-            (simulate_fopdt(u, T, K + h, tau, dead_time) - simulate_fopdt(u, T, K - h, tau, dead_time)) / (2 * h),
-            (simulate_fopdt(u, T, K, tau + h, dead_time) - simulate_fopdt(u, T, K, tau - h, dead_time)) / (2 * h),
+            (sim(K + h, tau, dead_time) - sim(K - h, tau, dead_time)) / (2 * h),
+            (sim(K, tau + h, dead_time) - sim(K, tau - h, dead_time)) / (2 * h),
             # one-sided: the analytic dead-time derivative is the right-hand one
-            (simulate_fopdt(u, T, K, tau, dead_time + h) - simulate_fopdt(u, T, K, tau, dead_time)) / h,
+            (sim(K, tau, dead_time + h) - sim(K, tau, dead_time)) / h,
         ]
     )
     np.testing.assert_allclose(S, ref, atol=2e-5 * np.abs(ref).max())

@@ -232,3 +232,11 @@ def test_closed_loop_time_and_bad_limits(straight_tank):
     rejected = straight_tank.assign(quality="rejected")
     with pytest.raises(DataError, match="no usable test"):
         decide(rejected)
+
+
+def test_gain_changing_sign_is_refused_with_a_reason(straight_tank):
+    flipped = straight_tank.copy()
+    high = flipped["level"] > 3.5
+    flipped.loc[high, ["gain", "gain_lo", "gain_hi"]] = -flipped.loc[high, ["gain", "gain_hi", "gain_lo"]].to_numpy()
+    with pytest.raises(DataError, match="changes sign"):
+        decide(flipped)

@@ -1,0 +1,31 @@
+"""`mapper bench` runs end to end at a tiny size and its JSON carries every figure (no timing asserts)."""
+
+from __future__ import annotations
+
+import json
+
+from conftest import run_mapper
+
+
+def test_bench_tiny_run_reports_every_field(tmp_path):
+    out = tmp_path / "bench.json"
+    result = run_mapper("bench", "--tests", "4", "--samples", "240", "--scale", "2", "--json", out,
+                        cwd=tmp_path, timeout=600)
+    assert result.returncode == 0, result.stderr
+    figures = json.loads(out.read_text())
+    assert set(figures) >= {"machine", "tests", "samples", "import", "fit", "end_to_end", "targets_met"}
+    assert set(figures["import"]) >= {"mapper_rows_per_second", "bare_scan_rows_per_second", "throughput_ratio"}
+    assert set(figures["fit"]) >= {"one_core_per_test_ms", "all_cores_per_test_ms", "curve_fit_loop_per_test_ms",
+                                   "mapper_within_tolerance", "curve_fit_within_tolerance",
+                                   "import_plus_fit_seconds", "curve_fit_loop_seconds"}
+    for size in ("small", "large"):
+        run = figures["end_to_end"][size]
+        assert run["peak_rss_mb"] > 0 and run["import_seconds"] > 0 and run["analyse_seconds"] > 0
+    assert figures["end_to_end"]["large"]["tests"] == 8
+    assert set(figures["targets_met"]) == {"import_throughput", "fit_one_core_speed", "fit_accuracy",
+                                           "fit_all_cores_faster", "import_plus_fit_faster_than_loop",
+                                           "memory_growth"}
+    assert all(isinstance(v, bool) for v in figures["targets_met"].values())
+    # every synthetic test is clean, so both fitters should recover nearly all of them
+    assert figures["fit"]["mapper_within_tolerance"] >= 0.75
+    assert "peak memory ratio" in result.stdout
