@@ -21,7 +21,7 @@ import pandas as pd
 
 from .campaign import Campaign, TestEntry, load_campaign
 from .errors import CampaignFileError, DataError, MapperError
-from .store import Store, scan_file, scan_first_text
+from .store import ScannedFile, Store, scan_file, scan_first_text, scan_many
 
 MIN_SAMPLES = 20
 MAX_MAGNITUDE = 1e12
@@ -190,17 +190,21 @@ def _parse_time(path: Path, column: str, raw: np.ndarray, kind: str, seconds_per
     ns = ns.to_numpy(dtype="datetime64[ns]").astype(np.int64)
     seconds = (ns - ns[0]) / 1e9
     first = stamps.iloc[0]
-    return seconds, first.isoformat(), (str(first.tzinfo) if first.tzinfo is not None else None)
+    zone = str(first.tzinfo) if first.tzinfo is not None else None
+    if kind.startswith("VARCHAR") or not kind.startswith("TIMESTAMP"):
+        written = _ZONE.search(str(raw[0]).strip())  # keep the zone as the file wrote it
+        zone = written.group(0) if written else zone
+    return seconds, first.isoformat(), zone
 
 
 def read_signals(path: Path, time_column: str, input_column: str, output_column: str,
-                 seconds_per_unit: float = 1.0) -> Signals:
+                 seconds_per_unit: float = 1.0, *, scanned: ScannedFile | None = None) -> Signals:
     """Read and check the three signals of a data file.
 
     Common export quirks are read, not refused: a semicolon delimiter with decimal commas,
     a byte-order mark, Windows line endings, and a units row under the header (recognised
     when the first data row holds text in the input or output column and every later row
-    holds numbers there).
+    holds numbers there). ``scanned`` passes columns already read in a batch.
 
     Raises
     ------
@@ -212,7 +216,8 @@ def read_signals(path: Path, time_column: str, input_column: str, output_column:
     if path.stat().st_size == 0:
         raise DataError(f"{path}: the file is empty", hint="export the test again")
     columns = (time_column, input_column, output_column)
-    scanned = scan_file(path, columns)
+    if scanned is None:
+        scanned = scan_file(path, columns)
     kinds = {c: scanned.types[c].upper() for c in columns}
     flags: list[str] = []
     offset = 0
@@ -259,10 +264,9 @@ def read_signals(path: Path, time_column: str, input_column: str, output_column:
         i = int(np.flatnonzero(np.ma.getmaskarray(raw_time))[0])
         raise DataError(f"{path}: empty cell in column '{time_column}' at line {_line(i, offset)}",
                         hint="fill or remove the incomplete rows; gaps in a log must not be blank cells")
-    t, start_time, zone = _parse_time(path, time_column, np.ma.getdata(raw_time) if np.ma.isMaskedArray(raw_time) else raw_time,
-                                      kinds[time_column], seconds_per_unit, offset, decimal_comma)
-    if start_time is not None and zone is None and kinds[time_column] != "TIMESTAMP":
-        pass
+    raw_time = np.ma.getdata(raw_time) if np.ma.isMaskedArray(raw_time) else raw_time
+    t, start_time, zone = _parse_time(path, time_column, raw_time, kinds[time_column],
+                                      seconds_per_unit, offset, decimal_comma)
     if kinds[time_column].startswith("TIMESTAMP WITH TIME ZONE"):
         written = scan_first_text(path, time_column)
         match = _ZONE.search(written or "")
@@ -453,10 +457,11 @@ def split_signals(signals: Signals, *, windows: Sequence[tuple[float, float]] = 
 
 
 # -- import -------------------------------------------------------------------------------
-def windows_for_file(entry: TestEntry, campaign: Campaign, source_hash: str) -> list[TestWindow]:
+def windows_for_file(entry: TestEntry, campaign: Campaign, source_hash: str,
+                     scanned: ScannedFile | None = None) -> list[TestWindow]:
     """Read, check and cut one file of a campaign. Raises DataError on bad input."""
     signals = read_signals(entry.path, campaign.time_column, campaign.input_column,
-                           campaign.output_column, campaign.seconds_per_time_unit)
+                           campaign.output_column, campaign.seconds_per_time_unit, scanned=scanned)
     try:
         pieces = split_signals(signals, windows=entry.windows,
                                seconds_per_unit=campaign.seconds_per_time_unit, period=campaign.period)
@@ -510,15 +515,22 @@ def import_campaign(store: Store, campaign: Campaign,
         except OSError:
             pass  # reported below when the file is read
     stored = store.stored_sources(list(hashes.values()))
+    columns = (campaign.time_column, campaign.input_column, campaign.output_column)
+    scans: dict[Path, ScannedFile] = {}
     for number, entry in enumerate(campaign.tests, start=1):
         if progress:
             progress(number, total, entry.file)
+        if number % BATCH_FILES == 1 or BATCH_FILES == 1:
+            # read the next batch of new files in one pass of the reader
+            upcoming = [e.path for i, e in enumerate(campaign.tests[number - 1:number - 1 + BATCH_FILES], start=number)
+                        if hashes.get(i) not in stored]
+            scans = scan_many(list(dict.fromkeys(upcoming)), columns) or {}
         try:
             source_hash = hashes.get(number) or file_hash(entry.path, _hash_settings(campaign, entry))
             if source_hash in pending_hashes or source_hash in stored:
                 summary.outcomes.append(FileOutcome(entry.file, "already stored"))
                 continue
-            windows = windows_for_file(entry, campaign, source_hash)
+            windows = windows_for_file(entry, campaign, source_hash, scans.get(entry.path))
         except DataError as exc:
             summary.outcomes.append(FileOutcome(entry.file, "refused", message=str(exc)))
             continue
