@@ -32,6 +32,11 @@ class Format(str, Enum):
     json = "json"
 
 
+class Against(str, Enum):
+    level = "level"
+    input = "input"
+
+
 class Direction(str, Enum):
     up = "up"
     down = "down"
@@ -80,13 +85,16 @@ def _say(lines) -> None:
 
 
 def _progress(label: str, total_hint: int = 20):
-    """A one-line progress counter on stderr for long runs (silent when not a terminal)."""
+    """A progress bar on stderr for long runs (only on a terminal, so logs stay clean)."""
     def report(done: int, total: int, name: str = "") -> None:
-        if total >= total_hint and sys.stderr.isatty():
-            sys.stderr.write(f"\r{label} {done}/{total}")
-            if done == total:
-                sys.stderr.write("\n")
-            sys.stderr.flush()
+        if total < total_hint or not sys.stderr.isatty():
+            return
+        width = 30
+        filled = int(width * done / total)
+        sys.stderr.write(f"\r{label} [{'#' * filled}{'.' * (width - filled)}] {done}/{total}")
+        if done == total:
+            sys.stderr.write("\n")
+        sys.stderr.flush()
     return report
 
 
@@ -155,15 +163,21 @@ def params_command(
 @_guard
 def map_command(
     campaign: Optional[str] = typer.Option(None, "--campaign", help="campaign to map (default: the newest)"),
-    against: str = typer.Option("level", "--against", help="map against 'level' (output) or 'input'"),
+    against: Against = typer.Option(Against.level, "--against", help="map against the output level or the input value"),
     format: Format = FormatOption,
 ) -> None:
     """Trend of each parameter against the operating level, its variation and significance."""
     from .jobs import operating_map
-    data, opmap = operating_map(_state["db"], campaign=campaign, against=against)
-    if data.note and format is Format.table:
-        typer.echo(data.note)
-    typer.echo(format_records(opmap.summary(), format.value))
+    data, opmap = operating_map(_state["db"], campaign=campaign, against=against.value)
+    rows = opmap.summary()
+    if format is not Format.table:
+        typer.echo(format_records(rows, format.value))
+        return
+    lines = [data.note] if data.note else []
+    lines += [f"operating map of '{data.name}' against {against.value} "
+              f"({opmap.level_min:g} to {opmap.level_max:g})", format_records(rows, "table", kind="map"), ""]
+    lines += [f"- {row['reason']}" for row in rows]
+    _say(lines)
 
 
 @app.command("at")
@@ -172,12 +186,16 @@ def at_command(
     level: float = typer.Argument(..., help="operating level (output units)"),
     campaign: Optional[str] = typer.Option(None, "--campaign"),
     extrapolate: bool = typer.Option(False, "--extrapolate", help="allow a level outside the tested range (with a warning)"),
+    against: Against = typer.Option(Against.level, "--against", help="LEVEL is an output level or an input value"),
     format: Format = FormatOption,
 ) -> None:
     """Gain, time constant and dead time at LEVEL, with the 95 % band."""
     from .jobs import parameters_at
-    typer.echo(format_object(parameters_at(_state["db"], level, campaign=campaign, extrapolate=extrapolate),
-                             format.value))
+    answer = parameters_at(_state["db"], level, campaign=campaign, extrapolate=extrapolate,
+                           against=against.value)
+    if answer.get("warning"):
+        sys.stderr.write(f"mapper: warning: {answer['warning']}\n")
+    typer.echo(format_object(answer, format.value))
 
 
 @app.command("verdict")

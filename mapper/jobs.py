@@ -77,17 +77,30 @@ def load_campaign_data(store: Store, campaign: str | None = None) -> CampaignDat
     return CampaignData(info["name"], params, units, ranges, note)
 
 
+AGAINST = {"level": "level", "input": "input_level"}
+
+
 def operating_map(store_path, *, campaign: str | None = None, against: str = "level") -> tuple[CampaignData, OperatingMap]:
-    """The operating map of a campaign (trends of gain, time constant, dead time, K/tau)."""
+    """The operating map of a campaign (trends of gain, time constant, dead time, K/tau).
+
+    ``against="level"`` maps against the operating level in output units (the brief's
+    definition); ``against="input"`` against the input's operating value instead (the mean
+    of its settled values before and after each move), e.g. a valve position.
+    """
+    if against not in AGAINST:
+        raise MapperError(f"cannot map against '{against}'", hint="use level or input")
     with Store(store_path, read_only=True) as store:
         data = load_campaign_data(store, campaign)
-    return data, build_map(data.params, against=against)
+        if against == "input":
+            levels = store.input_levels()
+            data.params["input_level"] = [levels.get(int(i), np.nan) for i in data.params["test_id"]]
+    return data, build_map(data.params, against=AGAINST[against])
 
 
 def parameters_at(store_path, level: float, *, campaign: str | None = None,
-                  extrapolate: bool = False) -> dict:
+                  extrapolate: bool = False, against: str = "level") -> dict:
     """Gain, time constant and dead time at ``level`` with their 95 % band."""
-    _, opmap = operating_map(store_path, campaign=campaign)
+    _, opmap = operating_map(store_path, campaign=campaign, against=against)
     return opmap.at(level, extrapolate=extrapolate)
 
 
@@ -137,17 +150,30 @@ def _fitted_curve(fit: dict | None, t: np.ndarray, u: np.ndarray) -> np.ndarray 
     return simulate_fopdt(u, period, gain, time_constant, dead_time, u0=u0, y0=offset)
 
 
-def _iter_tests(store: Store, params: pd.DataFrame):
-    """Per-test items for the report, read from the store one test at a time."""
-    for row in params.to_dict("records"):
-        test_id = int(row["test_id"])
-        t, u, y = store.samples(test_id)
-        fit = store.fit_details(test_id)
-        info = store.test_info(test_id)
-        item = dict(row)
-        item.update(note=info.get("note") or "", t=t, u=u, y=y, fitted=_fitted_curve(fit, t, u),
-                    step_time=_finite(fit.get("step_time")) if fit else None)
-        yield item
+def _iter_tests(store: Store, params: pd.DataFrame, *, batch: int = 32):
+    """Per-test items for the report, in report order, read from the store lazily.
+
+    The params rows are sorted first (rejected, suspect, good, then by level; see
+    :func:`mapper.report.test_sort_key`); samples are then read a small batch of tests at
+    a time, so at most ``batch`` tests' samples are in memory whatever the campaign size.
+    """
+    from .report import test_sort_key
+    rows = sorted(params.to_dict("records"), key=test_sort_key)
+    for start in range(0, len(rows), batch):
+        chunk = rows[start:start + batch]
+        samples = store.samples_many([int(row["test_id"]) for row in chunk])
+        for row in chunk:
+            test_id = int(row["test_id"])
+            if test_id not in samples:
+                raise NotFoundError(f"test {test_id} has no samples in {store.path}")
+            t, u, y = samples.pop(test_id)
+            fit = store.fit_details(test_id)
+            info = store.test_info(test_id)
+            item = dict(row)
+            item.update(note=info.get("note") or "", t=t, u=u, y=y,
+                        fitted=_fitted_curve(fit, t, u),
+                        step_time=_finite(fit.get("step_time")) if fit else None)
+            yield item
 
 
 @dataclass
@@ -169,16 +195,17 @@ def write_campaign_report(store_path, out: Path, *, campaign: str | None = None,
     found = comparisons(store_path, campaign=data.name)
     if compare_with:
         found += compare_two(store_path, compare_with, data.name)
-    with Store(store_path, read_only=True) as store:
-        tests = list(_iter_tests(store, data.params))
     summary = {"name": data.name, "n_tests": int(len(data.params)), "units": data.units}
     for quality in ("good", "suspect", "rejected"):
         summary[f"{quality} tests"] = int((data.params["quality"] == quality).sum())
     if data.note:
         summary["note"] = data.note
-    info = write_report(out, campaign=summary, params=data.params, trend=opmap.trend_frame(),
-                        map_summary=opmap.summary(), verdict=verdict.to_dict(), comparisons=found,
-                        tests=tests, png_dir=png_dir)
+    with Store(store_path, read_only=True) as store:
+        # tests stream from the store into the file one at a time
+        info = write_report(out, campaign=summary, params=data.params, trend=opmap.trend_frame(),
+                            map_summary=opmap.summary(), verdict=verdict.to_dict(),
+                            comparisons=found, tests=_iter_tests(store, data.params),
+                            png_dir=png_dir)
     return ReportOutcome(Path(info.path), info.size_bytes, tuple(info.png_files), verdict)
 
 

@@ -16,6 +16,11 @@ _TABLE_COLUMNS = {
         ("direction", "dir"), ("model", "model"), ("gain", "gain"), ("time_constant", "time const s"),
         ("dead_time", "dead time s"), ("nrmse", "nrmse"), ("quality", "quality"), ("flags", "flags"),
     ],
+    "map": [
+        ("parameter", "parameter"), ("shape", "trend"), ("at_low_end", "at low end"),
+        ("at_high_end", "at high end"), ("min", "min"), ("max", "max"), ("ratio", "max/min"),
+        ("significant", "significant"), ("n_tests", "tests"),
+    ],
 }
 
 

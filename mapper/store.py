@@ -458,6 +458,15 @@ class Store:
         frame["flags"] = [list(f) if f is not None else [] for f in frame["flags"]]
         return frame
 
+    def input_levels(self) -> dict[int, float]:
+        """Operating level of each test on the input side: the mean of the input's first and
+        last tenth (its settled value before and after the move)."""
+        rows = self.connection.execute(
+            "SELECT s.test_id, (avg(s.u) FILTER (WHERE s.sample_index < greatest(t.n_samples // 10, 1)) + "
+            "avg(s.u) FILTER (WHERE s.sample_index >= t.n_samples - greatest(t.n_samples // 10, 1))) / 2 "
+            "FROM samples s JOIN tests t USING (test_id) GROUP BY s.test_id").fetchall()
+        return {int(r[0]): float(r[1]) for r in rows if r[1] is not None}
+
     def counts(self) -> dict[str, int]:
         con = self.connection
         return {

@@ -96,3 +96,15 @@ def test_map_and_compare_commands(demo):
     assert "Gain" in compared.stdout
     missing = run_mapper("compare", OLD, "no such campaign", db=db)
     assert missing.returncode == 1 and "campaigns stored" in missing.stderr
+
+
+def test_map_against_input_and_extrapolation_warning(demo):
+    db = demo / "demo.duckdb"
+    mapped = run_mapper("map", "--campaign", NEW, "--against", "input", "--format", "json", db=db)
+    assert mapped.returncode == 0, mapped.stderr
+    gain = next(r for r in json.loads(mapped.stdout) if r["parameter"] == "gain")
+    # on the steam-valve side the gain falls as the valve opens (more flow, less gain per %)
+    assert gain["at_low_end"] > gain["at_high_end"]
+    far = run_mapper("at", "85", "--campaign", NEW, "--extrapolate", "--format", "json", db=db)
+    assert far.returncode == 0 and "warning" in far.stderr
+    assert json.loads(far.stdout)["level"] == 85
