@@ -161,16 +161,18 @@ def _iter_tests(store: Store, params: pd.DataFrame, *, batch: int = 32):
     rows = sorted(params.to_dict("records"), key=test_sort_key)
     for start in range(0, len(rows), batch):
         chunk = rows[start:start + batch]
-        samples = store.samples_many([int(row["test_id"]) for row in chunk])
+        ids = [int(row["test_id"]) for row in chunk]
+        samples = store.samples_many(ids)
+        fits = store.fit_details_many(ids)
+        notes = store.test_notes(ids)
         for row in chunk:
             test_id = int(row["test_id"])
             if test_id not in samples:
                 raise NotFoundError(f"test {test_id} has no samples in {store.path}")
             t, u, y = samples.pop(test_id)
-            fit = store.fit_details(test_id)
-            info = store.test_info(test_id)
+            fit = fits.pop(test_id, None)
             item = dict(row)
-            item.update(note=info.get("note") or "", t=t, u=u, y=y,
+            item.update(note=notes.get(test_id, ""), t=t, u=u, y=y,
                         fitted=_fitted_curve(fit, t, u),
                         step_time=_finite(fit.get("step_time")) if fit else None)
             yield item
@@ -187,10 +189,13 @@ class ReportOutcome:
 
 def write_campaign_report(store_path, out: Path, *, campaign: str | None = None,
                           png_dir: Path | None = None, ms_max: float = 2.0,
-                          slowdown_max: float = 2.0, compare_with: str | None = None) -> ReportOutcome:
-    """The self-contained HTML report of a campaign (and PNG charts when ``png_dir``)."""
+                          slowdown_max: float = 2.0, compare_with: str | None = None,
+                          schedule_out: Path | None = None) -> ReportOutcome:
+    """The self-contained HTML report of a campaign (and PNG charts when ``png_dir``; the
+    schedule CSV too when ``schedule_out``)."""
     from .report import write_report
-    data, verdict = verdict_for(store_path, campaign=campaign, ms_max=ms_max, slowdown_max=slowdown_max)
+    data, verdict = verdict_for(store_path, campaign=campaign, ms_max=ms_max, slowdown_max=slowdown_max,
+                                schedule_out=schedule_out)
     opmap = build_map(data.params)
     found = comparisons(store_path, campaign=data.name)
     if compare_with:
@@ -213,8 +218,8 @@ def analyse_store(store_path, *, out_dir: Path, campaign: str | None = None) -> 
     """Verdict, schedule CSV and report for a fitted store (used by demo and bench)."""
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
-    verdict_for(store_path, campaign=campaign, schedule_out=out_dir / "schedule.csv")
-    return write_campaign_report(store_path, out_dir / "report.html", campaign=campaign)
+    return write_campaign_report(store_path, out_dir / "report.html", campaign=campaign,
+                                 schedule_out=out_dir / "schedule.csv")
 
 
 def sample_campaign_folder() -> Path:
@@ -241,7 +246,7 @@ def run_demo(out_dir: Path, *, png: bool = True) -> DemoOutcome:
     """
     from .fitting import fit_store
     from .ingest import import_sources
-    from .output import table
+    from .output import format_records
     started = time.perf_counter()
     source = sample_campaign_folder()
     folders = sorted(p for p in source.iterdir() if (p / "campaign.toml").is_file()) if source.is_dir() else []
@@ -264,18 +269,18 @@ def run_demo(out_dir: Path, *, png: bool = True) -> DemoOutcome:
     newest = names[-1]
     data, opmap = operating_map(db, campaign=newest)
     lines += ["", f"Operating map of '{newest}':"]
-    lines += table([{k: v for k, v in row.items() if k != "reason"} for row in opmap.summary()]).splitlines()
-    data, verdict = verdict_for(db, campaign=newest, schedule_out=out_dir / "schedule.csv")
-    result = verdict.to_dict()
-    lines += ["", f"Verdict: {result['decision']}"] + [f"  - {r}" for r in result["reasons"]]
-    if len(names) > 1:
-        moved = compare_two(db, names[0], newest)
-        lines += ["", f"'{names[0]}' against '{newest}':"] + [f"  - {m['sentence']}" for m in moved[:6]]
+    lines += format_records(opmap.summary(), "table", kind="map").splitlines()
     png_dir = out_dir / "charts" if png else None
     if png_dir is not None and png_dir.exists():
         shutil.rmtree(png_dir)
     report = write_campaign_report(db, out_dir / "report.html", campaign=newest, png_dir=png_dir,
-                                   compare_with=names[0] if len(names) > 1 else None)
+                                   compare_with=names[0] if len(names) > 1 else None,
+                                   schedule_out=out_dir / "schedule.csv")
+    result = report.verdict.to_dict()
+    lines += ["", f"Verdict: {result['decision']}"] + [f"  - {r}" for r in result["reasons"]]
+    if len(names) > 1:
+        moved = compare_two(db, names[0], newest)
+        lines += ["", f"'{names[0]}' against '{newest}':"] + [f"  - {m['sentence']}" for m in moved[:6]]
     seconds = time.perf_counter() - started
     lines += ["", f"store:    {db}", f"report:   {report.path} ({report.size_bytes / 1e6:.1f} MB)",
               f"schedule: {out_dir / 'schedule.csv'}"]

@@ -5,6 +5,10 @@ inline: styles, the chart specifications and the Vega, Vega-Lite and Vega-Embed
 JavaScript (bundled by vl-convert), so it opens on a machine with no network and can be
 filed in a commissioning record as one file.
 
+The page is streamed: written to a temporary file beside the target as it is made and
+renamed at the end, with tests taken one at a time from any iterable, so a campaign of
+thousands of tests needs no more memory than one of a few.
+
 Safety of the page: every name and note that came from user files is escaped as text
 (:func:`html.escape`), and chart specifications are embedded as JSON with ``<``, ``>``
 and ``&`` written as ``\\u003c``, ``\\u003e``, ``\\u0026``, so a note cannot close the
@@ -18,11 +22,15 @@ import functools
 import html
 import json
 import math
+import os
 import re
-from collections.abc import Iterable, Mapping, Sequence
+import secrets
+import shutil
+import tempfile
+from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import IO, Any
 
 import pandas as pd
 import vl_convert
@@ -202,22 +210,44 @@ def _table(headers: Sequence[str], rows: Iterable[Sequence[Any]]) -> str:
 
 
 class _Page:
-    """Collects HTML parts and the charts to embed."""
+    """Writes HTML parts to a file as they come; a chart's PNG is written at once too.
 
-    def __init__(self) -> None:
-        self.parts: list[str] = []
-        self.charts: list[tuple[str, Any]] = []
+    Nothing of a chart is kept after it is written, so the report of a long campaign
+    needs no more memory than that of a short one.
+    """
+
+    def __init__(self, sink: IO[str], png_dir: Path | None = None) -> None:
+        self.sink = sink
+        self.png_dir = png_dir
+        self.png_files: list[Path] = []
+        self.n_charts = 0
+        self._next_id = 0
 
     def add(self, text: str) -> None:
-        self.parts.append(text)
+        self.sink.write(text)
 
-    def chart(self, name: str, chart: Any, label: str) -> None:
-        spec_id = f"spec-{len(self.charts)}"
-        self.charts.append((name, chart))
-        self.parts.append(f'<div class="chart" role="img" aria-label="{_e(label)}" '
-                          f'data-spec="{spec_id}"></div>'
-                          f'<script type="application/json" id="{spec_id}">'
-                          f"{safe_json(chart.to_dict(validate=False))}</script>")
+    def reserve(self) -> str:
+        """An element id for a chart that will be written later (ids follow page order)."""
+        spec_id = f"spec-{self._next_id}"
+        self._next_id += 1
+        return spec_id
+
+    def chart(self, name: str, chart: Any, label: str, *, spec_id: str | None = None) -> None:
+        """Embed an altair chart or a Vega-Lite dict (and write its PNG with ``png_dir``)."""
+        spec = chart if isinstance(chart, dict) else chart.to_dict(validate=False)
+        self.embed(label, [safe_json(spec)], spec_id=spec_id)
+        if self.png_dir is not None:
+            self.png_files.append(_write_png(self.png_dir, name, spec))
+
+    def embed(self, label: str, json_parts: Iterable[str], *, spec_id: str | None = None) -> None:
+        """Write a chart's element and its specification, given as pieces of JSON text."""
+        spec_id = spec_id or self.reserve()
+        self.n_charts += 1
+        self.add(f'<div class="chart" role="img" aria-label="{_e(label)}" data-spec="{spec_id}"></div>'
+                 f'<script type="application/json" id="{spec_id}">')
+        for part in json_parts:
+            self.add(part)
+        self.add("</script>")
 
 
 def _flag_list(value: Any) -> list[str]:
@@ -336,8 +366,11 @@ def _schedule_section(page: _Page, verdict: Mapping[str, Any] | None, units: Map
     page.add(_cautions_box() + "</section>")
 
 
-def _test_sort_key(item: tuple) -> tuple:
-    row = item[0]
+def test_sort_key(row: Mapping[str, Any]) -> tuple:
+    """Order of tests in the report: rejected, suspect, good, unjudged; then level, name.
+
+    Callers that stream tests into :func:`write_report` sort their params rows with this.
+    """
     level = row.get("level")
     try:
         level = float(level)
@@ -372,9 +405,70 @@ def _test_card(page: _Page, index: int, item: tuple, units: Mapping[str, str]) -
     if estimates:
         page.add(_table(["parameter", "estimate", "95 % low", "95 % high", "unit"], estimates))
     page.chart(f"test_{index:03d}_{re.sub(r'[^A-Za-z0-9_.-]+', '_', str(row.get('test_id')))[:60]}",
-               charts.step_test_chart(row, t, u, y, fitted, step, units=units),
+               charts.step_test_spec(row, t, u, y, fitted, step, units=units),
                f"Step response of test {row.get('test_id')}")
     page.add("</article>")
+
+
+def _tests_section(page: _Page, items: Iterable[tuple], units: Mapping[str, str],
+                   spool: IO[str]) -> None:
+    """Every test, one at a time; the overlay of all of them goes above the cards.
+
+    The cards go to ``spool`` while the small overlay series are gathered; then the
+    heading and the overlay are written and the cards copied after them.
+    """
+    out = page.sink
+    overlay_id = page.reserve()
+    series: list[charts.OverlaySeries] = []
+    count = 0
+    page.sink = spool
+    try:
+        for count, item in enumerate(items, start=1):
+            found = charts.overlay_series(item)
+            if found is not None:
+                series.append(found)
+            _test_card(page, count, item, units)
+    finally:
+        page.sink = out
+    page.add(f'<section id="tests"><h2>Every test ({count})</h2>'
+             "<p>Rejected tests first, then suspect, then good. The overlay divides each "
+             "response by its own change and counts time from the step, so odd tests stand out.</p>")
+    if count:
+        _overlay(page, series, overlay_id)
+    spool.seek(0)
+    shutil.copyfileobj(spool, out)
+    page.add("</section>")
+
+
+_ROWS_PLACEHOLDER = {"overlay_rows": "placeholder"}
+
+
+def _overlay(page: _Page, series: Sequence[charts.OverlaySeries], spec_id: str,
+             chunk: int = 2000) -> None:
+    """Embed the overlay, writing its data rows in chunks rather than as one list."""
+    spec = charts.overlay_chart_from_series(series, rows=[_ROWS_PLACEHOLDER]).to_dict(validate=False)
+    head, marker, tail = safe_json(spec).partition(safe_json([_ROWS_PLACEHOLDER]))
+    if not marker:
+        raise MapperError("the overlay chart has an unexpected layout",
+                          hint="report this as a bug in mapper")
+
+    def parts() -> Iterator[str]:
+        yield head + "["
+        batch: list[dict] = []
+        first = True
+        for row in charts.overlay_rows(series):
+            batch.append(row)
+            if len(batch) == chunk:
+                yield ("" if first else ",") + safe_json(batch)[1:-1]
+                first, batch = False, []
+        if batch:
+            yield ("" if first else ",") + safe_json(batch)[1:-1]
+        yield "]" + tail
+
+    page.embed("All tests normalised on one plot", parts(), spec_id=spec_id)
+    if page.png_dir is not None:
+        full = charts.overlay_chart_from_series(series).to_dict(validate=False)
+        page.png_files.append(_write_png(page.png_dir, "overlay", full))
 
 
 def _methods_section(page: _Page) -> None:
@@ -384,6 +478,22 @@ def _methods_section(page: _Page) -> None:
     page.add("</dl></section>")
 
 
+def _head(campaign: Mapping[str, Any]) -> str:
+    title = f"{campaign.get('name', 'Campaign')}: step-test report"
+    stamp = _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
+    toc = "".join(f'<li><a href="#{a}">{b}</a></li>' for a, b in (
+        ("summary", "Campaign summary"), ("verdict", "Verdict"), ("map", "Operating map"),
+        ("comparisons", "Comparisons"), ("schedule", "Schedule and tuning sheet"),
+        ("tests", "Every test"), ("methods", "Methods and sources"), ("cautions", "Safety cautions")))
+    return "".join([
+        '<!DOCTYPE html><html lang="en"><head><meta charset="utf-8">',
+        '<meta name="viewport" content="width=device-width, initial-scale=1">',
+        f"<title>{_e(title)}</title><style>{_STYLE}</style><script>{_ERROR_HOOK}</script></head><body>",
+        f'<header><h1>{_e(title)}</h1><p class="muted">Written {_e(stamp)}. Times in seconds; '
+        "intervals are 95 %.</p></header>",
+        f"<nav><ul>{toc}</ul></nav>"])
+
+
 def write_report(path: str | Path, *, campaign: Mapping[str, Any], params: pd.DataFrame | None,
                  trend: pd.DataFrame | None = None,
                  map_summary: Sequence[Mapping[str, Any]] | None = None,
@@ -391,6 +501,11 @@ def write_report(path: str | Path, *, campaign: Mapping[str, Any], params: pd.Da
                  comparisons: Sequence[Mapping[str, Any]] | None = None,
                  tests: Iterable[Any] = (), png_dir: str | Path | None = None) -> ReportInfo:
     """Write the campaign report as one self-contained HTML file.
+
+    The page is written piece by piece to a temporary file beside ``path`` and renamed
+    to ``path`` when complete, so an error never leaves half a report, and tests are
+    taken one at a time: memory does not grow with the number of tests beyond a small
+    thinned series per test for the overlay.
 
     Parameters
     ----------
@@ -411,9 +526,12 @@ def write_report(path: str | Path, *, campaign: Mapping[str, Any], params: pd.Da
         Each with ``sentence`` and ``kind``.
     tests : iterable
         Per test a dict (params row plus ``note, t, u, y, fitted, step_time``) or a tuple
-        ``(row, t, u, y[, fitted[, step_time]])``. Shown rejected first, then suspect.
+        ``(row, t, u, y[, fitted[, step_time]])``. A list or tuple is shown rejected
+        first, then suspect, then good (:func:`test_sort_key`); any other iterable (a
+        generator reading the store, say) is taken in the order given, one test at a
+        time, so sort it beforehand.
     png_dir : str or pathlib.Path, optional
-        When given, every chart is also written there as PNG.
+        When given, every chart is also written there as PNG, as soon as it is made.
 
     Returns
     -------
@@ -422,54 +540,58 @@ def write_report(path: str | Path, *, campaign: Mapping[str, Any], params: pd.Da
     Raises
     ------
     MapperError
-        When the file cannot be written.
+        When the file or the PNG folder cannot be written.
     """
     path = Path(path)
     units = dict(campaign.get("units") or {})
-    page = _Page()
-    items = sorted((charts.unpack_test(test) for test in tests), key=_test_sort_key)
-
-    _summary_section(page, campaign, params)
-    _verdict_section(page, verdict)
-    _map_section(page, params, trend, map_summary, units)
-    _comparisons_section(page, comparisons)
-    _schedule_section(page, verdict, units)
-    page.add(f'<section id="tests"><h2>Every test ({len(items)})</h2>'
-             "<p>Rejected tests first, then suspect, then good. The overlay divides each "
-             "response by its own change and counts time from the step, so odd tests stand out.</p>")
-    if items:
-        page.chart("overlay", charts.overlay_chart(items), "All tests normalised on one plot")
-    for index, item in enumerate(items, start=1):
-        _test_card(page, index, item, units)
-    page.add("</section>")
-    _methods_section(page)
-    page.add('<section id="cautions"><h2>Safety cautions</h2>' + _cautions_box() + "</section>")
-
-    title = f"{campaign.get('name', 'Campaign')}: step-test report"
-    stamp = _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
-    toc = "".join(f'<li><a href="#{a}">{b}</a></li>' for a, b in (
-        ("summary", "Campaign summary"), ("verdict", "Verdict"), ("map", "Operating map"),
-        ("comparisons", "Comparisons"), ("schedule", "Schedule and tuning sheet"),
-        ("tests", "Every test"), ("methods", "Methods and sources"), ("cautions", "Safety cautions")))
-    document = "".join([
-        '<!DOCTYPE html><html lang="en"><head><meta charset="utf-8">',
-        '<meta name="viewport" content="width=device-width, initial-scale=1">',
-        f"<title>{_e(title)}</title><style>{_STYLE}</style><script>{_ERROR_HOOK}</script></head><body>",
-        f'<header><h1>{_e(title)}</h1><p class="muted">Written {_e(stamp)}. Times in seconds; '
-        "intervals are 95 %.</p></header>",
-        f"<nav><ul>{toc}</ul></nav>", *page.parts,
-        f"<script>{javascript_bundle()}</script><script>{_RENDER}</script></body></html>"])
+    if isinstance(tests, (list, tuple)):
+        items: Iterable[tuple] = sorted((charts.unpack_test(test) for test in tests),
+                                        key=lambda item: test_sort_key(item[0]))
+    else:
+        items = (charts.unpack_test(test) for test in tests)
+    folder = None if png_dir is None else _png_folder(png_dir)
+    part = path.with_name(f".{path.name}.{os.getpid()}-{secrets.token_hex(4)}.part")
     try:
-        path.write_text(document, encoding="utf-8")
+        with open(part, "x", encoding="utf-8") as out, \
+                tempfile.TemporaryFile("w+", encoding="utf-8", dir=path.parent) as spool:
+            page = _Page(out, folder)
+            page.add(_head(campaign))
+            _summary_section(page, campaign, params)
+            _verdict_section(page, verdict)
+            _map_section(page, params, trend, map_summary, units)
+            _comparisons_section(page, comparisons)
+            _schedule_section(page, verdict, units)
+            _tests_section(page, items, units, spool)
+            _methods_section(page)
+            page.add('<section id="cautions"><h2>Safety cautions</h2>' + _cautions_box() + "</section>")
+            page.add(f"<script>{javascript_bundle()}</script><script>{_RENDER}</script></body></html>")
+        os.replace(part, path)
     except OSError as exc:
         raise MapperError(f"cannot write the report to {path}: {exc}",
                           hint="check that the folder exists and is writable") from exc
+    finally:
+        part.unlink(missing_ok=True)
+    return ReportInfo(path=path, size_bytes=path.stat().st_size, png_files=tuple(page.png_files),
+                      n_charts=page.n_charts)
 
-    png_files: list[Path] = []
-    if png_dir is not None:
-        png_files = write_pngs(page.charts, png_dir)
-    return ReportInfo(path=path, size_bytes=path.stat().st_size, png_files=tuple(png_files),
-                      n_charts=len(page.charts))
+
+def _png_folder(png_dir: str | Path) -> Path:
+    folder = Path(png_dir)
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise MapperError(f"cannot create the PNG folder {folder}: {exc}",
+                          hint="choose a writable folder with --png-dir") from exc
+    return folder
+
+
+def _write_png(folder: Path, name: str, spec: dict, scale: float = 1.0) -> Path:
+    stem = re.sub(r"[^A-Za-z0-9_.-]+", "_", name).lstrip(".") or "chart"
+    data = vl_convert.vegalite_to_png(spec, vl_version=_vl_version(), scale=scale,
+                                      allowed_base_urls=[])
+    target = folder / f"{stem}.png"
+    target.write_bytes(data)
+    return target
 
 
 def write_pngs(named_charts: Iterable[tuple[str, Any]], png_dir: str | Path,
@@ -479,7 +601,7 @@ def write_pngs(named_charts: Iterable[tuple[str, Any]], png_dir: str | Path,
     Parameters
     ----------
     named_charts : iterable of (str, chart)
-        File stem and altair chart; stems should be plain file names.
+        File stem and altair chart (or Vega-Lite dict); stems should be plain file names.
     png_dir : str or pathlib.Path
         Folder, created when missing.
     scale : float, default 1.0
@@ -489,18 +611,6 @@ def write_pngs(named_charts: Iterable[tuple[str, Any]], png_dir: str | Path,
     -------
     list of pathlib.Path
     """
-    folder = Path(png_dir)
-    try:
-        folder.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise MapperError(f"cannot create the PNG folder {folder}: {exc}",
-                          hint="choose a writable folder with --png-dir") from exc
-    written = []
-    for name, chart in named_charts:
-        stem = re.sub(r"[^A-Za-z0-9_.-]+", "_", name).lstrip(".") or "chart"
-        data = vl_convert.vegalite_to_png(chart.to_dict(validate=False), vl_version=_vl_version(), scale=scale,
-                                          allowed_base_urls=[])
-        target = folder / f"{stem}.png"
-        target.write_bytes(data)
-        written.append(target)
-    return written
+    folder = _png_folder(png_dir)
+    return [_write_png(folder, name, chart if isinstance(chart, dict) else chart.to_dict(validate=False),
+                       scale) for name, chart in named_charts]

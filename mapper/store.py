@@ -428,6 +428,20 @@ class Store:
         with self.transaction() as con:
             con.execute("DELETE FROM fits")
 
+    def fit_details_many(self, test_ids: Sequence[int]) -> dict[int, dict]:
+        """Fit rows of several tests in one query."""
+        frame = self.connection.execute(
+            "SELECT * FROM fits WHERE test_id IN (SELECT unnest(?::INTEGER[]))",
+            [list(map(int, test_ids))]).df()
+        return {int(r["test_id"]): r for r in frame.to_dict("records")}
+
+    def test_notes(self, test_ids: Sequence[int]) -> dict[int, str]:
+        """The campaign file's note of each test, for several tests in one query."""
+        rows = self.connection.execute(
+            "SELECT test_id, note FROM tests WHERE test_id IN (SELECT unnest(?::INTEGER[]))",
+            [list(map(int, test_ids))]).fetchall()
+        return {int(r[0]): r[1] or "" for r in rows}
+
     def fit_details(self, test_id: int) -> dict | None:
         frame = self.connection.execute("SELECT * FROM fits WHERE test_id = ?", [test_id]).df()
         return None if frame.empty else frame.to_dict("records")[0]
@@ -437,19 +451,10 @@ class Store:
                level_max: float | None = None, direction: str | None = None,
                include_rejected: bool = True) -> pd.DataFrame:
         """Rows of ``test_params`` with optional filters, ordered by campaign, level, id."""
-        clauses, args = [], []
-        if campaign is not None:
-            clauses.append("campaign = ?")
-            args.append(campaign)
-        if level_min is not None:
-            clauses.append("level >= ?")
-            args.append(level_min)
-        if level_max is not None:
-            clauses.append("level <= ?")
-            args.append(level_max)
-        if direction is not None:
-            clauses.append("direction = ?")
-            args.append(direction)
+        filters = (("campaign = ?", campaign), ("level >= ?", level_min),
+                   ("level <= ?", level_max), ("direction = ?", direction))
+        clauses = [clause for clause, value in filters if value is not None]
+        args = [value for _, value in filters if value is not None]
         if not include_rejected:
             clauses.append("coalesce(quality, '') <> 'rejected'")
         where = (" WHERE " + " AND ".join(clauses)) if clauses else ""

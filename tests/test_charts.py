@@ -105,6 +105,24 @@ def test_decimate_keeps_ends_and_a_spike():
     assert np.all(np.diff(idx) > 0)
 
 
+def test_decimate_matches_nanargmin_per_bucket():
+    # reference: numpy's nanargmin / nanargmax on each bucket, one bucket at a time
+    rng = np.random.default_rng(11)
+    y = np.round(rng.normal(size=1_000), 1)  # rounding makes ties: the earliest one is kept
+    y[100:140] = np.nan  # whole buckets of NaN keep their first sample
+    y[rng.random(1_000) < 0.1] = np.nan
+    points = 100
+    edges = np.linspace(0, len(y), points // 2 + 1).astype(int)
+    expected = {0, len(y) - 1}
+    for lo, hi in zip(edges[:-1], edges[1:]):
+        seg = y[lo:hi]
+        if np.all(np.isnan(seg)):
+            expected.add(lo)
+        else:
+            expected |= {lo + int(np.nanargmin(seg)), lo + int(np.nanargmax(seg))}
+    assert charts.decimate(np.arange(len(y)), y, points).tolist() == sorted(expected)
+
+
 def test_decimate_leaves_short_records_alone():
     t = np.arange(50.0)
     assert np.array_equal(charts.decimate(t, t, 300), np.arange(50))
@@ -340,3 +358,64 @@ def test_unpack_accepts_a_result_object(campaign):
 
     row, t, u, y, fitted, step = charts.unpack_test((test, test["t"], test["u"], test["y"], Result()))
     assert step == 20.0 and np.all(fitted == 7.0) and len(t) == len(y) == 800
+
+
+# ------------------------------------------------------------ fast specs
+def inline_datasets(spec):
+    """The spec with every named dataset put back inline, so names do not matter."""
+    named = spec.get("datasets", {})
+
+    def resolve(node):
+        if isinstance(node, dict):
+            if set(node) == {"name"} and node["name"] in named:
+                return {"values": named[node["name"]]}
+            return {k: resolve(v) for k, v in node.items() if k != "datasets"}
+        if isinstance(node, list):
+            return [resolve(v) for v in node]
+        return node
+    return resolve(spec)
+
+
+@pytest.mark.parametrize("case", ["fitted", "no_fit", "nan_fit", "no_marks"])
+def test_step_test_spec_equals_the_altair_chart(campaign, case):
+    _, tests = campaign
+    fast_specs = []
+    for test in tests[:3]:  # the second and third reuse the cached layout
+        test = dict(test, flags=["disturbed"] if test is tests[1] else [])
+        fitted = {"fitted": test["fitted"], "no_fit": None, "no_marks": test["fitted"],
+                  "nan_fit": np.full_like(test["fitted"], np.nan)}[case]
+        if case == "no_marks":
+            test["gain"] = None  # no model parameters: no 63.2 % point or dead-time mark
+        args = (test, test["t"], test["u"], test["y"], fitted, test["step_time"])
+        slow = spec_of(charts.step_test_chart(*args, units=UNITS))
+        fast = charts.step_test_spec(*args, units=UNITS)
+        json.dumps(fast, allow_nan=False)
+        assert inline_datasets(fast) == inline_datasets(slow)
+        fast_specs.append(fast)
+    # each test's own rows and title, not the template's or another test's
+    titles = [s["title"]["text"] for s in fast_specs]
+    assert len(set(titles)) == 3
+    rows = [dataset_rows(s, s["data"]) for s in fast_specs]
+    assert rows[0] != rows[1] and all(r[0]["t"] == 0.0 for r in rows)
+
+
+def test_step_test_spec_other_units_get_their_own_titles(campaign):
+    _, tests = campaign
+    test = tests[0]
+    args = (test, test["t"], test["u"], test["y"], test["fitted"], test["step_time"])
+    first = charts.step_test_spec(*args, units=UNITS)
+    other = charts.step_test_spec(*args, units={"input": "mA", "output": "kPa"})
+    assert other["vconcat"][-1]["encoding"]["y"]["title"] == "input (mA)"
+    assert first["vconcat"][-1]["encoding"]["y"]["title"] == "input (%)"
+    assert inline_datasets(other) == inline_datasets(spec_of(charts.step_test_chart(
+        *args, units={"input": "mA", "output": "kPa"})))
+
+
+def test_overlay_from_series_equals_overlay_chart(campaign):
+    _, tests = campaign
+    series = [charts.overlay_series(t) for t in tests]
+    assert all(isinstance(s, charts.OverlaySeries) for s in series)
+    assert all(len(s.elapsed) == len(s.response) <= charts.POINTS_PER_TEST // 2 + 2 for s in series)
+    direct = spec_of(charts.overlay_chart(tests))
+    assert inline_datasets(spec_of(charts.overlay_chart_from_series(series))) == inline_datasets(direct)
+    assert charts.overlay_series({**tests[0], "u": np.full(800, 40.0), "step_time": None}) is None

@@ -166,7 +166,7 @@ def test_quirky_campaign_imports_the_same_samples(tmp_path):
 
 
 # -- 2. interrupted writes ---------------------------------------------------------------
-N_FILES = 40
+N_FILES = 160  # import writes files in batches: enough files for several batches
 IMPORT_TRIALS = 12
 FIT_TRIALS = 5
 
@@ -235,8 +235,8 @@ def test_import_killed_at_random_moments_loses_nothing(tmp_path, big_campaign, c
         # half the kills are timed from the start (some land during start-up), half from
         # the moment the write-ahead log appears (they land among the file writes)
         watch = db.with_name(db.name + ".wal") if trial % 2 else None
-        finished = _kill_after(_command(db, "import", big_campaign), rng.uniform(0.0, 2.5) if watch
-                               else rng.uniform(0.5, 4.0), watch)
+        finished = _kill_after(_command(db, "import", big_campaign), rng.uniform(0.0, 0.8) if watch
+                               else rng.uniform(0.3, 1.8), watch)
         if db.exists():
             counts = store_is_whole(db)
             if finished is None and 0 < counts["tests"] < N_FILES:

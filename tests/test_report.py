@@ -6,13 +6,14 @@ import json
 import re
 import shutil
 import subprocess
+import weakref
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 import pytest
 
-from mapper import report
+from mapper import charts, report
 from mapper.errors import MapperError
 
 EVIL = "<script>alert(1)</script>"
@@ -182,6 +183,74 @@ def test_png_dir_writes_every_chart(inputs, tmp_path):
         assert "<" not in png.name and "/" not in png.stem
     assert {"operating_map.png", "overlay.png", "schedule.png", "margins.png"} <= {
         p.name for p in info.png_files}
+
+
+# ------------------------------------------------------------- streaming
+def test_streamed_tests_are_held_one_at_a_time(inputs, tmp_path):
+    live = []
+    most = 0
+
+    def stream():
+        nonlocal most
+        for index in range(12):
+            test = fopdt_test(f"S{index:02d}", 20.0 + index, "up", 1.5, 12.0, 3.0, seed=index)
+            live.append(weakref.ref(test["y"]))
+            most = max(most, sum(ref() is not None for ref in live))
+            yield test
+
+    info = report.write_report(tmp_path / "s.html", **{**inputs, "tests": stream()})
+    # the previous item may still be bound while the next is made; never more than that
+    assert most <= 2
+    text = info.path.read_text(encoding="utf-8")
+    assert "Every test (12)" in text and info.n_charts == 4 + 12
+    # a stream is shown in the order given (the caller sorts it), the overlay above the cards
+    positions = [text.index(f"<h3>S{index:02d} ") for index in range(12)]
+    assert positions == sorted(positions)
+    assert text.index('aria-label="All tests normalised on one plot"') < positions[0]
+    blocks = re.findall(r'<script type="application/json" id="spec-(\d+)">(.*?)</script>', text,
+                        flags=re.S)
+    assert [int(i) for i, _ in blocks] == list(range(16))
+    overlay = json.loads(blocks[3][1])
+    rows = [r for values in overlay["datasets"].values() for r in values if "response" in r]
+    assert {r["test_id"] for r in rows} == {f"S{index:02d}" for index in range(12)}
+
+
+def test_overlay_rows_stream_in_chunks_as_valid_json(inputs, tmp_path, monkeypatch):
+    tests = [fopdt_test(f"C{index}", 30.0, "up", 1.5, 12.0, 3.0, seed=index) for index in range(5)]
+    original = report._overlay
+    monkeypatch.setattr(report, "_overlay", lambda page, series, spec_id: original(
+        page, series, spec_id, chunk=7))  # many small chunks, one partly filled
+    info = report.write_report(tmp_path / "c.html", **{**inputs, "tests": tests})
+    text = info.path.read_text(encoding="utf-8")
+    body = re.search(r'<script type="application/json" id="spec-3">(.*?)</script>', text, flags=re.S)
+    spec = json.loads(body.group(1))
+    rows = [r for values in spec["datasets"].values() for r in values if "response" in r]
+    expected = sum(len(charts.overlay_series(t).elapsed) for t in tests)
+    assert len(rows) == expected
+    assert report._ROWS_PLACEHOLDER not in rows
+
+
+def test_error_while_streaming_leaves_no_half_report(inputs, tmp_path):
+    target = tmp_path / "r.html"
+    target.write_text("the previous report", encoding="utf-8")
+
+    def failing():
+        yield fopdt_test("F1", 20.0, "up", 1.5, 12.0, 3.0)
+        raise ValueError("store went away")
+
+    with pytest.raises(ValueError, match="store went away"):
+        report.write_report(target, **{**inputs, "tests": failing()})
+    assert target.read_text(encoding="utf-8") == "the previous report"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["r.html"]
+
+
+def test_test_sort_key_orders_quality_then_level():
+    rows = [{"test_id": "a", "quality": "good", "level": 10.0},
+            {"test_id": "b", "quality": "rejected", "level": 90.0},
+            {"test_id": "c", "quality": "suspect", "level": None},
+            {"test_id": "d", "quality": "suspect", "level": 50.0},
+            {"test_id": "e", "quality": None, "level": 1.0}]
+    assert [r["test_id"] for r in sorted(rows, key=report.test_sort_key)] == ["b", "d", "c", "a", "e"]
 
 
 # ------------------------------------------------------------- browser
