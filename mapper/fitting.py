@@ -1,14 +1,19 @@
 """Fitting a whole store: stream tests from the store, identify them, store the fits.
 
-The store is read one test at a time and fits are written in small transactions, so a
+The store is read in batches of tests and fits are written in small transactions, so a
 campaign is never held in memory at once and an interrupted run leaves only whole fits;
 a re-run picks up the tests still without a fit. Large campaigns are spread over every
-core with a process pool (the store itself is only touched by the calling process).
+core with a process pool (the store itself is only touched by the calling process); each
+job carries a chunk of tests, so the cost of handing work to a process is paid per
+chunk, and only a few chunks are in flight at once, so memory stays flat.
 """
 
 from __future__ import annotations
 
+import multiprocessing
 import os
+import sys
+import time
 from collections import deque
 from collections.abc import Callable, Iterator
 from concurrent.futures import ProcessPoolExecutor
@@ -19,8 +24,12 @@ import numpy as np
 from .identify import METHODS, identify
 from .store import Store
 
-BATCH = 32
+BATCH = 64  # tests read from the store per query
+SAVE_BATCH = 256  # fits written per transaction (each costs tens of ms whatever its size)
+SAVE_EVERY_SECONDS = 2.0  # ...but commit at least this often, so a killed run keeps its work
 PARALLEL_FROM = 24  # below this many tests a process pool costs more than it saves
+CHUNK = 8  # tests per job sent to a worker process
+IN_FLIGHT_PER_WORKER = 2  # jobs queued per worker: keeps workers busy, memory flat
 
 
 @dataclass
@@ -57,6 +66,31 @@ def fit_one(job: tuple) -> dict:
     return row
 
 
+def fit_chunk(jobs: list[tuple]) -> list[dict]:
+    """Identify a chunk of tests in a worker process (see :func:`fit_one`)."""
+    return [fit_one(job) for job in jobs]
+
+
+def _chunks(jobs: Iterator[tuple], size: int) -> Iterator[list[tuple]]:
+    chunk: list[tuple] = []
+    for job in jobs:
+        chunk.append(job)
+        if len(chunk) >= size:
+            yield chunk
+            chunk = []
+    if chunk:
+        yield chunk
+
+
+def _pool_context():
+    # fork starts a worker in milliseconds with the package already imported; other
+    # start methods re-import numpy and scipy in every worker. Workers never touch the
+    # store, so the parent's open database is of no concern to them.
+    if sys.platform.startswith("linux"):
+        return multiprocessing.get_context("fork")
+    return None
+
+
 def _jobs(store: Store, test_ids: list[int], method: str) -> Iterator[tuple]:
     # read in batches: few queries, yet never the whole campaign in memory
     for first in range(0, len(test_ids), BATCH):
@@ -83,7 +117,9 @@ def fit_store(store: Store, *, refit: bool = False, method: str = "least_squares
     method : str, default "least_squares"
         One of :data:`mapper.identify.METHODS`.
     workers : int, optional
-        Processes to use; default all cores for large campaigns, one for small ones.
+        Processes to use, the calling one included (it reads, writes and fits while
+        ``workers - 1`` helpers fit); default all cores for large campaigns, one for
+        small ones.
     """
     if method not in METHODS:
         from .errors import MapperError
@@ -95,31 +131,43 @@ def fit_store(store: Store, *, refit: bool = False, method: str = "least_squares
     workers = max(1, min(workers, total or 1))
     summary = FitSummary(workers=workers)
     batch: list[dict] = []
+    last_save = time.monotonic()
 
     def take(row: dict) -> None:
+        nonlocal last_save
         batch.append(row)
         summary.fitted += 1
         summary.quality[row.get("quality") or "rejected"] = summary.quality.get(row.get("quality") or "rejected", 0) + 1
         if progress:
             progress(summary.fitted, total)
-        if len(batch) >= BATCH:
+        if len(batch) >= SAVE_BATCH or time.monotonic() - last_save > SAVE_EVERY_SECONDS:
             store.save_fits(batch)
             batch.clear()
+            last_save = time.monotonic()
 
     jobs = _jobs(store, test_ids, method)
     if workers == 1:
         for job in jobs:
             take(fit_one(job))
     else:
-        with ProcessPoolExecutor(max_workers=workers) as pool:
-            # a bounded queue of pending jobs keeps memory flat however large the campaign
+        # chunks small enough that every process gets several, large enough to amortise
+        size = max(1, min(CHUNK, total // (2 * workers)))
+        helpers = workers - 1  # the calling process reads, writes and fits too
+        with ProcessPoolExecutor(max_workers=helpers, mp_context=_pool_context()) as pool:
+            # a bounded queue of pending chunks keeps memory flat however large the campaign
             pending: deque = deque()
-            for job in jobs:
-                pending.append(pool.submit(fit_one, job))
-                if len(pending) >= 4 * workers:
-                    take(pending.popleft().result())
+            for chunk in _chunks(jobs, size):
+                while pending and pending[0].done():
+                    for row in pending.popleft().result():
+                        take(row)
+                if len(pending) < IN_FLIGHT_PER_WORKER * helpers:
+                    pending.append(pool.submit(fit_chunk, chunk))
+                else:  # every helper is busy: fit this chunk here rather than wait
+                    for row in fit_chunk(chunk):
+                        take(row)
             while pending:
-                take(pending.popleft().result())
+                for row in pending.popleft().result():
+                    take(row)
     if batch:
         store.save_fits(batch)
     return summary

@@ -18,7 +18,7 @@ import numpy as np
 from . import estimators as est
 from .errors import DataError, IdentificationError
 from .models import simulate_fopdt, simulate_integrating
-from .quality import FLAG_TEXT, StepInfo, assess, find_step, grade, noise_sd
+from .quality import FLAG_TEXT, StepInfo, _median, assess, find_step, grade, noise_sd, standard_deviation
 from .uncertainty import sandwich_covariance, t_quantile
 
 __all__ = ["METHODS", "FitResult", "identify", "find_step", "StepInfo"]
@@ -188,7 +188,7 @@ def identify(
     if not (np.all(np.isfinite(t)) and np.all(np.isfinite(u)) and np.all(np.isfinite(y))):
         return _rejected(method, ["non_finite_samples"], settings)
     dt = np.diff(t)
-    period = float(np.median(dt))
+    period = _median(dt)
     if not period > 0 or np.any(dt <= 0):
         return _rejected(method, ["irregular_sampling", "too_few_samples"], settings)
     flags: list[str] = []
@@ -259,15 +259,15 @@ def _identify_step(t, u, y, step, method, flags, settings, input_range, output_r
         response = e.gain * step.size
         y_after = e.offset + response
     residuals = y - fitted
-    sd = float(np.std(residuals))
-    span = float(np.ptp(fitted))
-    nrmse = float(np.sqrt(np.mean(residuals**2)) / span) if span > 0 else None
+    sd = standard_deviation(residuals)
+    span = float(fitted.max() - fitted.min())
+    nrmse = math.sqrt(float(residuals @ residuals) / residuals.size) / span if span > 0 else None
     intervals = _intervals(e, cov, quantile)
     flags = flags + assess(
         t, u, y, step,
         model=e.model, time_constant=e.time_constant, dead_time=e.dead_time,
         response=response, residuals=residuals,
-        input_range=input_range, output_range=output_range,
+        input_range=input_range, output_range=output_range, period=period,
     )  # fmt: skip
     band = 4.0 * sd
     gain_lo, gain_hi = intervals["gain"]

@@ -25,6 +25,7 @@ __all__ = [
     "simulate_fopdt",
     "fopdt_sensitivities",
     "fopdt_unit_response",
+    "unit_response_rows",
     "simulate_integrating",
     "integrating_unit_response",
     "step_response",
@@ -205,25 +206,79 @@ def fopdt_sensitivities(
     v = _deviation(u, u0)
     tau = float(time_constant)
     _check_positive("time_constant", tau)
-    d, f = split_dead_time(dead_time, period)
-    a = math.exp(-period / tau)
-    e = math.exp(-(period - f) / tau)
-    # Every numerator here has two taps at delays d+1 and d+2 over the pole a, so one
-    # run of the pole filter (w) and one of the double pole (z) give all columns as
-    # shifted combinations.
-    w = lfilter([1.0], [1.0, -a], v)
-    w1, w2 = _delay(w, d + 1), _delay(w, d + 2)
+    _check_positive("period", period)
+    if not (np.isfinite(dead_time) and dead_time >= 0):
+        raise ValueError(f"dead_time must be finite and >= 0, got {dead_time!r}")
+    rows = np.empty((4, v.size))
+    unit_response_rows(v, tau / period, dead_time / period, rows)
+    # rows hold d/d(log tau) and d/dtheta in samples; convert to seconds
+    return np.column_stack([rows[1], gain * rows[2] / tau, gain * rows[3] / period])
+
+
+def unit_response_rows(
+    v: np.ndarray, time_constant: float, dead_time: float, out: np.ndarray
+) -> np.ndarray:
+    """Unit-gain FOPDT response and its sensitivities, time counted in samples.
+
+    Parameters
+    ----------
+    v : ndarray, shape (n,)
+        Input in deviation form, held between samples.
+    time_constant, dead_time : float
+        tau and theta in samples (``tau > 0``, ``theta >= 0``); not checked.
+    out : ndarray, shape (4, n)
+        Filled with rows ``1``, ``g``, ``dg/d(log tau)`` and ``dg/dtheta``.
+
+    Returns
+    -------
+    ndarray
+        The double-pole filter output ``z = v / (1 - a q^-1)^2`` (it does not depend
+        on the dead time, so callers may reuse it).
+
+    Notes
+    -----
+    Every row is a three-tap combination of ``z`` delayed by the whole-sample dead
+    time: the ZOH numerator ``b1 + b2 q^-1`` and its derivatives over the single pole
+    are rewritten over the double pole, so one filter run gives all rows. This is
+    the inner loop of the least-squares fit; it makes few numpy calls on purpose.
+    """
+    n = v.size
+    tau = time_constant
+    d = int(math.floor(dead_time + 1e-12))
+    f = dead_time - d
+    if f < 0.0:
+        f = 0.0
+    a = math.exp(-1.0 / tau)
+    e = math.exp(-(1.0 - f) / tau)
+    z = lfilter(_ONE, np.array([1.0, -2.0 * a, a * a]), v)
     b1, b2 = 1.0 - e, e - a
-    g = b1 * w1 + b2 * w2
-    # d/dtau of a, b1, b2 (unit gain)
-    da = a * period / tau**2
-    db1 = -e * (period - f) / tau**2
-    db2 = e * (period - f) / tau**2 - da
-    z = lfilter([1.0], [1.0, -a], w)
-    g_tau = db1 * w1 + db2 * w2 + da * (b1 * _delay(z, d + 2) + b2 * _delay(z, d + 3))
-    # d/df of b1, b2: -e/tau and +e/tau
-    g_theta = (e / tau) * (w2 - w1)
-    return np.column_stack([g, gain * g_tau, gain * g_theta])
+    da = a / (tau * tau)
+    db1 = -e * (1.0 - f) / (tau * tau)
+    db2 = -db1 - da
+    c = e / tau
+    # columns: coefficients of z[j-2], z[j-1], z[j] (j counted from the delay d+1);
+    # w[j] = z[j] - a z[j-1] is the single-pole response the ZOH numerator acts on
+    coef = np.array(
+        [
+            [-a * b2, b2 - a * b1, b1],
+            [tau * (da * b2 - a * db2), tau * (db2 - a * db1 + da * b1), tau * db1],
+            [-c * a, c * (1.0 + a), -c],
+        ]
+    )
+    s = d + 1
+    length = n - s
+    out[0] = 1.0
+    out[1:, :s] = 0.0
+    if length > 0:
+        padded = np.concatenate((_TWO_ZEROS, z[:length]))
+        # rows z[j-2], z[j-1], z[j] as one strided view of the padded run (no copies)
+        taps = np.ndarray((3, length), buffer=padded, strides=(padded.itemsize,) * 2)
+        np.matmul(coef, taps, out=out[1:, s:])
+    return z
+
+
+_ONE = np.array([1.0])
+_TWO_ZEROS = np.zeros(2)
 
 
 def _delay(x: np.ndarray, shift: int) -> np.ndarray:

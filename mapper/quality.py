@@ -11,6 +11,7 @@ limits; they are module constants so a site can see and argue with them.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -124,6 +125,14 @@ def _median(x: np.ndarray) -> float:
     return 0.5 * float(part[k - 1] + part[k])
 
 
+def standard_deviation(x: np.ndarray) -> float:
+    """Population standard deviation (``numpy.std`` without its per-call overhead)."""
+    if x.size == 0:
+        return float("nan")
+    xc = x - x.sum() / x.size
+    return math.sqrt(float(xc @ xc) / x.size)
+
+
 def noise_sd(x: np.ndarray) -> float:
     """Robust standard deviation of the sample-to-sample noise of a signal.
 
@@ -224,7 +233,7 @@ def find_step(t: np.ndarray, u: np.ndarray) -> StepInfo:
     i_hi = seg.start + int(np.argmax(frac >= 1.0 - p_lo))
     if i_hi < i_lo:
         i_hi = i_lo
-    period = float(np.median(np.diff(t)))
+    period = _median(np.diff(t))
     duration = (t[i_hi] - t[i_lo]) / (1.0 - 2.0 * p_lo)
     start = t[i_lo] - p_lo * duration
     if i_hi == i_lo:  # a clean step between two samples
@@ -295,7 +304,7 @@ def _flat_topped(x: np.ndarray) -> bool:
     span = float(np.max(x) - np.min(x))
     for extreme in (np.max(x), np.min(x)):
         at = x == extreme
-        if int(at.sum()) >= max(5, 0.02 * x.size):
+        if np.count_nonzero(at) >= max(5, 0.02 * x.size):
             rest = x[~at]
             # second differences: smooth (noise-free) curves give almost none
             if rest.size > 10 and _second_difference_sd(rest) > 1e-3 * span:
@@ -308,14 +317,20 @@ def _second_difference_sd(x: np.ndarray) -> float:
     return 1.4826 * _median(np.abs(d2 - _median(d2))) / np.sqrt(6.0)
 
 
+def _distinct_count(sorted_x: np.ndarray) -> int:
+    return 1 + int(np.count_nonzero(sorted_x[1:] != sorted_x[:-1])) if sorted_x.size else 0
+
+
 def _distinct_share(x: np.ndarray) -> float:
-    return np.unique(x).size / max(x.size, 1)
+    return _distinct_count(np.sort(x)) / max(x.size, 1)
 
 
 def _quantised(y: np.ndarray, response: float) -> bool:
-    levels = np.unique(y)
-    if levels.size < 2 or levels.size > y.size / 4:
+    ys = np.sort(y)
+    count = _distinct_count(ys)
+    if count < 2 or count > y.size / 4:
         return False
+    levels = ys[np.concatenate(([True], ys[1:] != ys[:-1]))]
     quantum = _median(np.diff(levels))
     return quantum > 0 and abs(response) / quantum < QUANTUM_LEVELS
 
@@ -339,6 +354,7 @@ def assess(
     residuals: np.ndarray | None,
     input_range=None,
     output_range=None,
+    period: float | None = None,
 ) -> list[str]:
     """Checks of a step test against the rules of thumb of the trade.
 
@@ -359,6 +375,8 @@ def assess(
         Output minus the fitted model.
     input_range, output_range : (float, float), optional
         Instrument ranges for the clipping checks.
+    period : float, optional
+        Sample period (s); default the median spacing of ``t``.
 
     Returns
     -------
@@ -373,9 +391,10 @@ def assess(
     time constant; pre-step drift carried over the test under 10 % of the response.
     """
     flags: list[str] = []
-    period = float(np.median(np.diff(t)))
+    if period is None:
+        period = _median(np.diff(t))
     t_end = float(t[-1])
-    sigma = float(np.std(residuals)) if residuals is not None and residuals.size else noise_sd(y)
+    sigma = standard_deviation(residuals) if residuals is not None and residuals.size else noise_sd(y)
     band = NOISE_BAND_SDS * sigma
     i0 = step.index
     # drift before the step: slope of a straight line through the baseline
@@ -408,7 +427,7 @@ def assess(
     if residuals is not None and abs(response) > 0 and model != "none":
         width = 5
         if time_constant is not None:
-            width = int(np.clip(0.5 * time_constant / period, 5, max(5, residuals.size // 10)))
+            width = int(min(max(0.5 * time_constant / period, 5), max(5, residuals.size // 10)))
         systematic = np.max(np.abs(_moving_average(residuals, width)))
         if systematic > MISFIT_FRACTION * abs(response):
             flags.append("poor_fit")

@@ -20,6 +20,7 @@ from pathlib import Path
 import duckdb
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 
 from . import __version__
 from .errors import DataError, NotAStoreError, NotFoundError, StoreError, StoreInUseError
@@ -216,8 +217,8 @@ class Store:
         else:
             self._check_existing(wait)
         self.connection = _connect(self.path, read_only, wait)
-        if not read_only:
-            self._create_schema()
+        if not read_only and not exists:
+            self._create_schema()  # an existing store was checked for its schema version above
 
     def _check_existing(self, wait: float) -> None:
         # Inspect read-only first so that a foreign DuckDB database is never written to.
@@ -377,21 +378,23 @@ class Store:
         """Store fit rows (``FitResult.to_row()`` plus ``test_id``) in one transaction."""
         if not rows:
             return
-        columns: dict[str, list] = {"test_id": [int(r["test_id"]) for r in rows]}
+        numeric = [n for n in FIT_VALUE_COLUMNS if n not in ("method", "model", "quality")]
+        columns: dict[str, pa.Array] = {"test_id": pa.array([int(r["test_id"]) for r in rows], pa.int32())}
         for name in FIT_VALUE_COLUMNS:
             values = [r.get(name) for r in rows]
-            columns[name] = [None if isinstance(v, float) and not np.isfinite(v) else v for v in values]
-        columns["flags"] = [list(r.get("flags") or []) for r in rows]
-        columns["notes"] = [list(r.get("notes") or []) for r in rows]
-        columns["settings"] = [json.dumps(r.get("settings") or {}, default=str) for r in rows]
-        columns["tool_version"] = [__version__] * len(rows)
-        frame = pd.DataFrame(columns)
-        for name in FIT_VALUE_COLUMNS:
-            if name not in ("method", "model", "quality"):
-                frame[name] = pd.to_numeric(frame[name], errors="coerce").astype(float)
-        names = ", ".join(frame.columns)  # constant column names, no user text
+            if name in numeric:
+                values = [None if v is None or not np.isfinite(float(v)) else float(v) for v in values]
+                columns[name] = pa.array(values, pa.float64())
+            else:
+                columns[name] = pa.array(values, pa.string())
+        columns["flags"] = pa.array([list(r.get("flags") or []) for r in rows], pa.list_(pa.string()))
+        columns["notes"] = pa.array([list(r.get("notes") or []) for r in rows], pa.list_(pa.string()))
+        columns["settings"] = pa.array([json.dumps(r.get("settings") or {}, default=str) for r in rows])
+        columns["tool_version"] = pa.array([__version__] * len(rows))
+        table = pa.table(columns)
+        names = ", ".join(table.column_names)  # constant column names, no user text
         with self.transaction() as con:
-            con.register("incoming_fits", frame)
+            con.register("incoming_fits", table)
             try:
                 con.execute("DELETE FROM fits WHERE test_id IN (SELECT test_id FROM incoming_fits)")
                 con.execute(f"INSERT INTO fits ({names}) SELECT {names} FROM incoming_fits")
