@@ -18,7 +18,7 @@ import numpy as np
 from . import estimators as est
 from .errors import DataError, IdentificationError
 from .models import simulate_fopdt, simulate_integrating
-from .quality import FLAG_TEXT, StepInfo, _median, assess, find_step, grade, noise_sd, standard_deviation
+from .quality import FLAG_TEXT, StepInfo, median, assess, find_step, grade, noise_sd, standard_deviation
 from .uncertainty import sandwich_covariance, t_quantile
 
 __all__ = ["METHODS", "FitResult", "identify", "find_step", "StepInfo"]
@@ -188,7 +188,7 @@ def identify(
     if not (np.all(np.isfinite(t)) and np.all(np.isfinite(u)) and np.all(np.isfinite(y))):
         return _rejected(method, ["non_finite_samples"], settings)
     dt = np.diff(t)
-    period = _median(dt)
+    period = median(dt)
     if not period > 0 or np.any(dt <= 0):
         return _rejected(method, ["irregular_sampling", "too_few_samples"], settings)
     flags: list[str] = []

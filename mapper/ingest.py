@@ -21,6 +21,7 @@ import pandas as pd
 
 from .campaign import Campaign, TestEntry, load_campaign
 from .errors import CampaignFileError, DataError, MapperError
+from .quality import median
 from .store import ScannedFile, Store, scan_file, scan_first_text, scan_many
 
 MIN_SAMPLES = 20
@@ -333,8 +334,8 @@ def uniform_grid(t: np.ndarray, u: np.ndarray, y: np.ndarray, period: float | No
     t, u, y, period, flags
     """
     steps = np.diff(t)
-    median = float(np.median(steps))
-    period = float(period) if period else median
+    typical = float(median(steps))
+    period = float(period) if period else typical
     flags: list[str] = []
     regular = np.allclose(steps, period, rtol=0.01, atol=0)
     if regular:
@@ -352,7 +353,7 @@ def uniform_grid(t: np.ndarray, u: np.ndarray, y: np.ndarray, period: float | No
 
 def _noise(values: np.ndarray) -> float:
     diffs = np.diff(values)
-    return float(1.4826 * np.median(np.abs(diffs - np.median(diffs))) / np.sqrt(2))
+    return float(1.4826 * median(np.abs(diffs - median(diffs))) / np.sqrt(2))
 
 
 def find_moves(u: np.ndarray) -> list[tuple[int, int]]:
@@ -368,27 +369,26 @@ def find_moves(u: np.ndarray) -> list[tuple[int, int]]:
         return []
     threshold = max(8 * _noise(u), 0.02 * span, 1e-12 * max(1.0, float(np.max(np.abs(u)))))
     moves: list[tuple[int, int, float]] = []
-    reference = float(np.median(u[: min(5, len(u))]))
+    reference = float(median(u[: min(5, len(u))]))
     k = 1
     n = len(u)
+    steps = np.diff(u)
     while k < n:
-        if abs(u[k] - reference) > threshold:
-            start = k - 1
-            end = k
-            # the move lasts while the input keeps travelling in the same direction
-            sign = np.sign(u[k] - reference)
-            while end + 1 < n and sign * (u[end + 1] - u[end]) > threshold / 4:
-                end += 1
-            settled = u[end: min(end + 5, n)]
-            new_reference = float(np.median(settled))
-            if moves and moves[-1][1] >= start - 2 and np.sign(moves[-1][2]) == sign:
-                previous = moves.pop()
-                start = previous[0]
-            moves.append((start, end, float(sign)))
-            reference = new_reference
-            k = end + 1
-        else:
-            k += 1
+        away = np.flatnonzero(np.abs(u[k:] - reference) > threshold)
+        if away.size == 0:
+            break
+        k += int(away[0])
+        start = k - 1
+        # the move lasts while the input keeps travelling in the same direction
+        sign = float(np.sign(u[k] - reference))
+        stopped = np.flatnonzero(sign * steps[k:] <= threshold / 4)
+        end = k + int(stopped[0]) if stopped.size else n - 1
+        new_reference = float(median(u[end: min(end + 5, n)]))
+        if moves and moves[-1][1] >= start - 2 and moves[-1][2] == sign:
+            start = moves.pop()[0]
+        moves.append((start, end, sign))
+        reference = new_reference
+        k = end + 1
     return [(s, e) for s, e, _ in moves]
 
 
@@ -434,7 +434,7 @@ def split_signals(signals: Signals, *, windows: Sequence[tuple[float, float]] = 
                 lo = start - max((start - before) // 2, min(MIN_SAMPLES // 2, start - before)) if i else 0
                 hi = moves[i + 1][0] if i + 1 < len(moves) else len(t)
                 flags = []
-                response = np.median(y[max(hi - 5, lo):hi]) - np.median(y[lo:start + 1])
+                response = median(y[max(hi - 5, lo):hi]) - median(y[lo:start + 1])
                 if i + 1 < len(moves) and not _settled_at_end(y[lo:hi], response):
                     flags.append("next_move_before_settled")
                 pieces.append((lo, hi, flags))
@@ -445,13 +445,13 @@ def split_signals(signals: Signals, *, windows: Sequence[tuple[float, float]] = 
                             hint=f"give windows of at least {MIN_SAMPLES} samples")
         wt, wu, wy = t[lo:hi], u[lo:hi], y[lo:hi]
         edge = max(3, len(wt) // 10)
-        step = float(np.median(wu[-edge:]) - np.median(wu[:edge]))
+        step = float(median(wu[-edge:]) - median(wu[:edge]))
         if step == 0:
             step = float(wu[np.argmax(np.abs(wu - wu[0]))] - wu[0])
         result.append(dict(
             t=wt - wt[0], u=wu, y=wy, period=grid_period, window_start=float(wt[0]),
             window_end=float(wt[-1]), input_step=step, direction="up" if step > 0 else "down",
-            level_estimate=float((np.median(wy[:edge]) + np.median(wy[-edge:])) / 2),
+            level_estimate=float((median(wy[:edge]) + median(wy[-edge:])) / 2),
             flags=tuple(signals.flags) + tuple(grid_flags) + tuple(flags)))
     return result
 
@@ -482,6 +482,8 @@ def _hash_settings(campaign: Campaign, entry: TestEntry) -> dict:
 
 
 BATCH_FILES = 32  # files written per transaction
+SCAN_FILES = 128  # files read per pass of DuckDB's reader (its start-up is paid once a pass)
+SCAN_BYTES = 32 << 20  # ...and at most this much of them, so a pass stays small in memory
 BATCH_SAMPLES = 500_000  # ...or fewer, so a batch never holds much in memory
 
 
@@ -517,13 +519,20 @@ def import_campaign(store: Store, campaign: Campaign,
     stored = store.stored_sources(list(hashes.values()))
     columns = (campaign.time_column, campaign.input_column, campaign.output_column)
     scans: dict[Path, ScannedFile] = {}
+    scanned_up_to = 0
     for number, entry in enumerate(campaign.tests, start=1):
         if progress:
             progress(number, total, entry.file)
-        if number % BATCH_FILES == 1 or BATCH_FILES == 1:
+        if number > scanned_up_to:
             # read the next batch of new files in one pass of the reader
-            upcoming = [e.path for i, e in enumerate(campaign.tests[number - 1:number - 1 + BATCH_FILES], start=number)
-                        if hashes.get(i) not in stored]
+            upcoming, size = [], 0
+            for i, e in enumerate(campaign.tests[number - 1:], start=number):
+                if len(upcoming) >= SCAN_FILES or size >= SCAN_BYTES:
+                    break
+                scanned_up_to = i
+                if hashes.get(i) not in stored:
+                    upcoming.append(e.path)
+                    size += e.path.stat().st_size if e.path.is_file() else 0
             scans = scan_many(list(dict.fromkeys(upcoming)), columns) or {}
         try:
             source_hash = hashes.get(number) or file_hash(entry.path, _hash_settings(campaign, entry))

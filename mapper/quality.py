@@ -18,6 +18,7 @@ import numpy as np
 
 __all__ = [
     "StepInfo",
+    "median",
     "find_step",
     "noise_sd",
     "assess",
@@ -116,7 +117,7 @@ class StepInfo:
         return self.n_moves > 0 and self.size != 0.0
 
 
-def _median(x: np.ndarray) -> float:
+def median(x: np.ndarray) -> float:
     """Median by partial sort (np.median's checks cost more than the sort on short data)."""
     k = x.size // 2
     if x.size % 2:
@@ -149,11 +150,11 @@ def noise_sd(x: np.ndarray) -> float:
     dx = np.diff(x)
     if 2 * np.count_nonzero(dx) < dx.size:  # more than half the steps are exactly zero
         return 0.0
-    return 1.4826 * _median(np.abs(dx - _median(dx))) / np.sqrt(2.0)
+    return 1.4826 * median(np.abs(dx - median(dx))) / np.sqrt(2.0)
 
 
 def _no_step(n: int, u: np.ndarray) -> StepInfo:
-    level = _median(u) if n else float("nan")
+    level = median(u) if n else float("nan")
     return StepInfo(float("nan"), 0.0, level, level, 0.0, 0, n, float("nan"))
 
 
@@ -208,8 +209,8 @@ def find_step(t: np.ndarray, u: np.ndarray) -> StepInfo:
     for i, (k0, k1) in enumerate(regions):
         lo = max(regions[i - 1][1] + 1 if i else 0, k0 - w + 1)
         hi = min(regions[i + 1][0] + 1 if i + 1 < len(regions) else n, k1 + w + 1)
-        before = _median(u[lo : k0 + 1])
-        after = _median(u[k1 + 1 : hi]) if hi > k1 + 1 else float(u[-1])
+        before = median(u[lo : k0 + 1])
+        after = median(u[k1 + 1 : hi]) if hi > k1 + 1 else float(u[-1])
         moves.append((k0, k1, before, after))
     sizes = np.array([m[3] - m[2] for m in moves])
     biggest = float(np.max(np.abs(sizes)))
@@ -222,8 +223,8 @@ def find_step(t: np.ndarray, u: np.ndarray) -> StepInfo:
     # levels from the whole steady stretches on either side of the main move
     lo = keep[j - 1][1] + 1 if j > 0 else 0
     hi = keep[j + 1][0] + 1 if j + 1 < len(keep) else n
-    before = _median(u[lo : k0 + 1])
-    after = _median(u[k1 + 1 : hi])
+    before = median(u[lo : k0 + 1])
+    after = median(u[k1 + 1 : hi])
     size = after - before
     sign = np.sign(size)
     p_lo = float(np.clip(4.0 * sigma / abs(size), 0.1, 0.4))
@@ -233,7 +234,7 @@ def find_step(t: np.ndarray, u: np.ndarray) -> StepInfo:
     i_hi = seg.start + int(np.argmax(frac >= 1.0 - p_lo))
     if i_hi < i_lo:
         i_hi = i_lo
-    period = _median(np.diff(t))
+    period = median(np.diff(t))
     duration = (t[i_hi] - t[i_lo]) / (1.0 - 2.0 * p_lo)
     start = t[i_lo] - p_lo * duration
     if i_hi == i_lo:  # a clean step between two samples
@@ -314,7 +315,7 @@ def _flat_topped(x: np.ndarray) -> bool:
 
 def _second_difference_sd(x: np.ndarray) -> float:
     d2 = np.diff(x, 2)
-    return 1.4826 * _median(np.abs(d2 - _median(d2))) / np.sqrt(6.0)
+    return 1.4826 * median(np.abs(d2 - median(d2))) / np.sqrt(6.0)
 
 
 def _distinct_count(sorted_x: np.ndarray) -> int:
@@ -331,7 +332,7 @@ def _quantised(y: np.ndarray, response: float) -> bool:
     if count < 2 or count > y.size / 4:
         return False
     levels = ys[np.concatenate(([True], ys[1:] != ys[:-1]))]
-    quantum = _median(np.diff(levels))
+    quantum = median(np.diff(levels))
     return quantum > 0 and abs(response) / quantum < QUANTUM_LEVELS
 
 
@@ -392,7 +393,7 @@ def assess(
     """
     flags: list[str] = []
     if period is None:
-        period = _median(np.diff(t))
+        period = median(np.diff(t))
     t_end = float(t[-1])
     sigma = standard_deviation(residuals) if residuals is not None and residuals.size else noise_sd(y)
     band = NOISE_BAND_SDS * sigma

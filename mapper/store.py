@@ -298,35 +298,52 @@ class Store:
         """Store test windows (of one or several files) in one transaction.
 
         ``windows`` are :class:`mapper.ingest.TestWindow` objects. Returns the new ids.
+        Rows and samples go in as columnar tables, not row by row.
         """
-        ids = []
+        if not windows:
+            return []
         with self.transaction() as con:
             campaign_id = self.ensure_campaign(con, campaign)
-            for window in windows:
-                test_id = int(con.execute(
-                    "INSERT INTO tests (campaign_id, file, source_path, source_hash, window_index, "
-                    "window_start, window_end, start_time, time_zone, period, n_samples, "
-                    "level_given, level_estimate, direction, input_step, note, import_flags) "
-                    "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING test_id",
-                    [campaign_id, window.file, str(window.source_path), window.source_hash,
-                     window.window_index, window.window_start, window.window_end, window.start_time,
-                     window.time_zone, window.period, len(window.t), window.level_given,
-                     window.level_estimate, window.direction, window.input_step, window.note,
-                     list(window.flags)],
-                ).fetchone()[0])
-                ids.append(test_id)
-            # all samples of the batch in one columnar insert
-            frame = pd.DataFrame({
+            ids = [int(r[0]) for r in con.execute(
+                "SELECT nextval('test_ids') FROM range(?)", [len(windows)]).fetchall()]
+
+            def column(name, kind):
+                return pa.array([getattr(w, name) for w in windows], kind)
+            tests = pa.table({
+                "test_id": pa.array(ids, pa.int32()),
+                "campaign_id": pa.array([campaign_id] * len(windows), pa.int32()),
+                "file": column("file", pa.string()),
+                "source_path": pa.array([str(w.source_path) for w in windows], pa.string()),
+                "source_hash": column("source_hash", pa.string()),
+                "window_index": column("window_index", pa.int32()),
+                "window_start": column("window_start", pa.float64()),
+                "window_end": column("window_end", pa.float64()),
+                "start_time": column("start_time", pa.string()),
+                "time_zone": column("time_zone", pa.string()),
+                "period": column("period", pa.float64()),
+                "n_samples": pa.array([len(w.t) for w in windows], pa.int32()),
+                "level_given": column("level_given", pa.float64()),
+                "level_estimate": column("level_estimate", pa.float64()),
+                "direction": column("direction", pa.string()),
+                "input_step": column("input_step", pa.float64()),
+                "note": column("note", pa.string()),
+                "import_flags": pa.array([list(w.flags) for w in windows], pa.list_(pa.string())),
+            })
+            samples = pa.table({
                 "test_id": np.concatenate([np.full(len(w.t), i, dtype=np.int32) for i, w in zip(ids, windows)]),
                 "sample_index": np.concatenate([np.arange(len(w.t), dtype=np.int32) for w in windows]),
                 "t": np.concatenate([w.t for w in windows]),
                 "u": np.concatenate([w.u for w in windows]),
                 "y": np.concatenate([w.y for w in windows]),
             })
-            con.register("incoming_samples", frame)
+            names = ", ".join(tests.column_names)  # constant column names, no user text
+            con.register("incoming_tests", tests)
+            con.register("incoming_samples", samples)
             try:
+                con.execute(f"INSERT INTO tests ({names}) SELECT {names} FROM incoming_tests")
                 con.execute("INSERT INTO samples SELECT * FROM incoming_samples")
             finally:
+                con.unregister("incoming_tests")
                 con.unregister("incoming_samples")
         return ids
 

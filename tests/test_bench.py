@@ -17,7 +17,10 @@ def test_bench_tiny_run_reports_every_field(tmp_path):
     assert set(figures["import"]) >= {"mapper_rows_per_second", "bare_scan_rows_per_second", "throughput_ratio"}
     assert set(figures["fit"]) >= {"one_core_per_test_ms", "all_cores_per_test_ms", "curve_fit_loop_per_test_ms",
                                    "mapper_within_tolerance", "curve_fit_within_tolerance",
-                                   "import_plus_fit_seconds", "curve_fit_loop_seconds"}
+                                   "import_plus_fit_seconds", "curve_fit_loop_seconds",
+                                   "large_one_core_per_test_ms", "large_all_cores_per_test_ms",
+                                   "large_import_plus_fit_seconds", "large_curve_fit_loop_seconds",
+                                   "large_curve_fit_loop_per_test_ms"}
     for size in ("small", "large"):
         run = figures["end_to_end"][size]
         assert run["peak_rss_mb"] > 0 and run["import_seconds"] > 0 and run["analyse_seconds"] > 0
