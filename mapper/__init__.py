@@ -17,8 +17,8 @@ _EXPORTS = {
     "NotFoundError": "errors", "IdentificationError": "errors", "OutOfRangeError": "errors",
     # campaign, import and store
     "Campaign": "campaign", "TestEntry": "campaign", "load_campaign": "campaign",
-    "import_sources": "ingest", "read_signals": "ingest", "split_signals": "ingest",
-    "find_moves": "ingest", "uniform_grid": "ingest", "ImportSummary": "ingest",
+    "import_sources": "ingest", "read_signals": "ingest", "split_signals": "segment",
+    "find_moves": "segment", "uniform_grid": "segment", "ImportSummary": "ingest",
     "Store": "store",
     # response maths and identification
     "zoh_coefficients": "models", "simulate_fopdt": "models", "simulate_integrating": "models",

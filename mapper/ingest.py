@@ -21,27 +21,15 @@ import pandas as pd
 
 from .campaign import Campaign, TestEntry, load_campaign
 from .errors import CampaignFileError, DataError, MapperError
-from .quality import median
+# find_moves and uniform_grid are re-exported for callers of the import API
+from .segment import MIN_SAMPLES, Signals, find_moves, split_signals, uniform_grid  # noqa: F401
 from .store import ScannedFile, Store, scan_file, scan_first_text, scan_many
 
-MIN_SAMPLES = 20
 MAX_MAGNITUDE = 1e12
 _NUMERIC_TYPES = ("DOUBLE", "FLOAT", "BIGINT", "INTEGER", "SMALLINT", "TINYINT", "HUGEINT",
                   "UBIGINT", "UINTEGER", "USMALLINT", "UTINYINT", "DECIMAL", "REAL")
 _ZONE = re.compile(r"(?:Z|[+-]\d\d:?\d\d)$")
 _DECIMAL_COMMA = re.compile(r"^\s*[-+]?\d*,\d+([eE][-+]?\d+)?\s*$")
-
-
-@dataclass(frozen=True)
-class Signals:
-    """Time (s from the first sample), input and output of one file, checked."""
-
-    t: np.ndarray
-    u: np.ndarray
-    y: np.ndarray
-    start_time: str | None = None
-    time_zone: str | None = None
-    flags: tuple[str, ...] = ()
 
 
 @dataclass(frozen=True)
@@ -319,141 +307,6 @@ def _check_time(path: Path, column: str, t: np.ndarray, offset: int) -> None:
             f"{path}: time {what} in column '{column}' at line {_line(i, offset)} "
             f"({t[i - 1]:g} s then {t[i]:g} s from the start)",
             hint="sort the rows by time and remove duplicated samples")
-
-
-# -- grids and splitting ------------------------------------------------------------------
-def uniform_grid(t: np.ndarray, u: np.ndarray, y: np.ndarray, period: float | None = None):
-    """Put irregular samples on a uniform grid.
-
-    The input is held between its recorded changes (a logged set-point or valve demand
-    stays until the next record); the output is interpolated linearly. Gaps much longer
-    than the grid (more than five periods) are flagged as compression.
-
-    Returns
-    -------
-    t, u, y, period, flags
-    """
-    steps = np.diff(t)
-    typical = float(median(steps))
-    period = float(period) if period else typical
-    flags: list[str] = []
-    regular = np.allclose(steps, period, rtol=0.01, atol=0)
-    if regular:
-        return t, u, y, period, flags
-    grid = np.arange(0.0, t[-1] + 0.5 * period, period)
-    grid = grid[grid <= t[-1] + 1e-9 * period]
-    held = np.searchsorted(t, grid, side="right") - 1
-    u_grid = u[np.clip(held, 0, len(u) - 1)]
-    y_grid = np.interp(grid, t, y)
-    flags.append("resampled_to_uniform_grid")
-    if (steps > 5 * period).any():
-        flags.append("compressed_gaps")
-    return grid, u_grid, y_grid, period, flags
-
-
-def _noise(values: np.ndarray) -> float:
-    diffs = np.diff(values)
-    return float(1.4826 * median(np.abs(diffs - median(diffs))) / np.sqrt(2))
-
-
-def find_moves(u: np.ndarray) -> list[tuple[int, int]]:
-    """Index pairs (start, end) of each distinct input move.
-
-    A move is a change of the held input level by more than a threshold set from the
-    input's own sample-to-sample noise (eight robust standard deviations) and 2 % of its
-    range, so noise on a flat input never makes a move. Short actuator ramps are one move;
-    pieces of one ramp in the same direction with no plateau between are merged.
-    """
-    span = float(np.ptp(u))
-    if span == 0:
-        return []
-    threshold = max(8 * _noise(u), 0.02 * span, 1e-12 * max(1.0, float(np.max(np.abs(u)))))
-    moves: list[tuple[int, int, float]] = []
-    reference = float(median(u[: min(5, len(u))]))
-    k = 1
-    n = len(u)
-    steps = np.diff(u)
-    while k < n:
-        away = np.flatnonzero(np.abs(u[k:] - reference) > threshold)
-        if away.size == 0:
-            break
-        k += int(away[0])
-        start = k - 1
-        # the move lasts while the input keeps travelling in the same direction
-        sign = float(np.sign(u[k] - reference))
-        stopped = np.flatnonzero(sign * steps[k:] <= threshold / 4)
-        end = k + int(stopped[0]) if stopped.size else n - 1
-        new_reference = float(median(u[end: min(end + 5, n)]))
-        if moves and moves[-1][1] >= start - 2 and moves[-1][2] == sign:
-            start = moves.pop()[0]
-        moves.append((start, end, sign))
-        reference = new_reference
-        k = end + 1
-    return [(s, e) for s, e, _ in moves]
-
-
-def _settled_at_end(y: np.ndarray, response: float) -> bool:
-    tail = y[int(0.75 * len(y)):]
-    if len(tail) < 4:
-        return False
-    x = np.arange(len(tail))
-    slope = np.polyfit(x, tail, 1)[0]
-    drift = abs(slope) * len(tail)
-    return drift <= max(3 * _noise(y), 0.05 * abs(response))
-
-
-def split_signals(signals: Signals, *, windows: Sequence[tuple[float, float]] = (),
-                  seconds_per_unit: float = 1.0, period: float | None = None) -> list[dict]:
-    """Cut a file's signals into test windows (one per input move).
-
-    Each automatic window runs from the last half of the settled stretch before its move
-    to the start of the next move. A move followed by another before the output settled
-    still becomes a test, flagged ``next_move_before_settled``. Explicit ``windows``
-    (start, end in the file's time unit, counted from its first sample) override the split.
-    """
-    t, u, y, grid_period, grid_flags = uniform_grid(signals.t, signals.u, signals.y, period)
-    pieces: list[tuple[int, int, list[str]]] = []
-    if windows:
-        for start, end in windows:
-            lo = int(np.searchsorted(t, start * seconds_per_unit, side="left"))
-            hi = int(np.searchsorted(t, end * seconds_per_unit, side="right"))
-            pieces.append((lo, hi, ["explicit_window"]))
-    else:
-        moves = find_moves(u)
-        if not moves:
-            raise DataError("the input holds no move larger than its noise",
-                            hint="check the input column; a step test needs a clear input step")
-        plateaus = [moves[i + 1][0] - moves[i][1] for i in range(len(moves) - 1)]
-        long_enough = all(p >= max(MIN_SAMPLES, 0.05 * len(t)) for p in plateaus)
-        if len(moves) == 1 or not long_enough:
-            flags = ["several_input_moves"] if len(moves) > 1 else []
-            pieces.append((0, len(t), flags))
-        else:
-            for i, (start, end) in enumerate(moves):
-                before = 0 if i == 0 else moves[i - 1][1] + 1
-                lo = start - max((start - before) // 2, min(MIN_SAMPLES // 2, start - before)) if i else 0
-                hi = moves[i + 1][0] if i + 1 < len(moves) else len(t)
-                flags = []
-                response = median(y[max(hi - 5, lo):hi]) - median(y[lo:start + 1])
-                if i + 1 < len(moves) and not _settled_at_end(y[lo:hi], response):
-                    flags.append("next_move_before_settled")
-                pieces.append((lo, hi, flags))
-    result = []
-    for lo, hi, flags in pieces:
-        if hi - lo < MIN_SAMPLES:
-            raise DataError(f"a test window holds only {hi - lo} samples (from {t[lo] if lo < len(t) else t[-1]:g} s)",
-                            hint=f"give windows of at least {MIN_SAMPLES} samples")
-        wt, wu, wy = t[lo:hi], u[lo:hi], y[lo:hi]
-        edge = max(3, len(wt) // 10)
-        step = float(median(wu[-edge:]) - median(wu[:edge]))
-        if step == 0:
-            step = float(wu[np.argmax(np.abs(wu - wu[0]))] - wu[0])
-        result.append(dict(
-            t=wt - wt[0], u=wu, y=wy, period=grid_period, window_start=float(wt[0]),
-            window_end=float(wt[-1]), input_step=step, direction="up" if step > 0 else "down",
-            level_estimate=float((median(wy[:edge]) + median(wy[-edge:])) / 2),
-            flags=tuple(signals.flags) + tuple(grid_flags) + tuple(flags)))
-    return result
 
 
 # -- import -------------------------------------------------------------------------------
