@@ -8,7 +8,7 @@ from __future__ import annotations
 import json
 import shutil
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -184,7 +184,6 @@ class ReportOutcome:
     size_bytes: int
     png_files: tuple = ()
     verdict: Verdict | None = None
-    notes: list[str] = field(default_factory=list)
 
 
 def write_campaign_report(store_path, out: Path, *, campaign: str | None = None,

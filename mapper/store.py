@@ -12,7 +12,7 @@ from __future__ import annotations
 import json
 import os
 import time
-from collections.abc import Iterable, Iterator, Sequence
+from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
@@ -116,7 +116,6 @@ class ScannedFile:
     columns: tuple[str, ...]
     types: dict[str, str]
     values: dict[str, np.ndarray]
-    first_time_text: str | None = None
 
     @property
     def delimiter(self) -> str | None:
@@ -289,11 +288,6 @@ class Store:
             [list(source_hashes)]).fetchall()
         return {r[0] for r in rows}
 
-    def has_source(self, source_hash: str) -> bool:
-        """True when a file with this content hash is already stored."""
-        return self.connection.execute(
-            "SELECT count(*) FROM tests WHERE source_hash = ?", [source_hash]).fetchone()[0] > 0
-
     def add_tests(self, campaign, windows: Sequence) -> list[int]:
         """Store test windows (of one or several files) in one transaction.
 
@@ -364,17 +358,6 @@ class Store:
             sql += " WHERE test_id NOT IN (SELECT test_id FROM fits)"
         return [int(r[0]) for r in self.connection.execute(sql + " ORDER BY test_id").fetchall()]
 
-    def test_info(self, test_id: int) -> dict:
-        frame = self.connection.execute(
-            "SELECT t.*, c.name AS campaign, c.input_range_low, c.input_range_high, "
-            "c.output_range_low, c.output_range_high, c.input_unit, c.output_unit "
-            "FROM tests t JOIN campaigns c USING (campaign_id) WHERE t.test_id = ?",
-            [test_id]).df()
-        if frame.empty:
-            raise NotFoundError(f"test {test_id} is not in the store {self.path}",
-                                hint="list the tests with 'mapper params'")
-        return frame.to_dict("records")[0]
-
     def samples(self, test_id: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Time (s), input and output of one test, in time order."""
         arrays = self.connection.execute(
@@ -384,11 +367,6 @@ class Store:
             raise NotFoundError(f"test {test_id} has no samples in {self.path}")
         return (np.asarray(arrays["t"], float), np.asarray(arrays["u"], float),
                 np.asarray(arrays["y"], float))
-
-    def iter_samples(self, test_ids: Iterable[int]) -> Iterator[tuple[int, np.ndarray, np.ndarray, np.ndarray]]:
-        """Samples test by test, so a campaign is never held in memory at once."""
-        for test_id in test_ids:
-            yield (test_id, *self.samples(test_id))
 
     # -- fits -----------------------------------------------------------------------------
     def save_fits(self, rows: Sequence[dict]) -> None:
@@ -444,10 +422,6 @@ class Store:
             result[int(ids[a])] = (t[a:b].copy(), u[a:b].copy(), y[a:b].copy())
         return result
 
-    def clear_fits(self) -> None:
-        with self.transaction() as con:
-            con.execute("DELETE FROM fits")
-
     def fit_details_many(self, test_ids: Sequence[int]) -> dict[int, dict]:
         """Fit rows of several tests in one query."""
         frame = self.connection.execute(
@@ -461,10 +435,6 @@ class Store:
             "SELECT test_id, note FROM tests WHERE test_id IN (SELECT unnest(?::INTEGER[]))",
             [list(map(int, test_ids))]).fetchall()
         return {int(r[0]): r[1] or "" for r in rows}
-
-    def fit_details(self, test_id: int) -> dict | None:
-        frame = self.connection.execute("SELECT * FROM fits WHERE test_id = ?", [test_id]).df()
-        return None if frame.empty else frame.to_dict("records")[0]
 
     # -- the public view ----------------------------------------------------------------
     def params(self, *, campaign: str | None = None, level_min: float | None = None,
