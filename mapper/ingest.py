@@ -11,7 +11,10 @@ from __future__ import annotations
 
 import hashlib
 import json
+import os
 import re
+import sys
+import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -334,6 +337,21 @@ def _hash_settings(campaign: Campaign, entry: TestEntry) -> dict:
             "period": campaign.period, "campaign": campaign.name}
 
 
+PAUSE_ENV = "MAPPER_TEST_PAUSE_AFTER_BATCH"
+
+
+def _pause_for_tests() -> None:
+    """Test hook: announce a committed batch on stderr and hold, so a kill can be aimed.
+
+    Set only by the interruption tests (``MAPPER_TEST_PAUSE_AFTER_BATCH=SECONDS``); it
+    makes "killed between two batches" a state the test can see on any machine speed.
+    """
+    seconds = os.environ.get(PAUSE_ENV)
+    if seconds:
+        print("mapper-test: batch committed", file=sys.stderr, flush=True)
+        time.sleep(float(seconds))
+
+
 BATCH_FILES = 32  # files written per transaction
 SCAN_FILES = 128  # files read per pass of DuckDB's reader (its start-up is paid once a pass)
 SCAN_BYTES = 32 << 20  # ...and at most this much of them, so a pass stays small in memory
@@ -358,6 +376,7 @@ def import_campaign(store: Store, campaign: Campaign,
     def flush() -> None:
         if pending:
             store.add_tests(campaign, pending)
+            _pause_for_tests()
         summary.outcomes.extend(pending_outcomes)
         pending.clear()
         pending_outcomes.clear()

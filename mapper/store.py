@@ -215,9 +215,9 @@ class Store:
                 hint="give --db a new file name or an existing mapper store")
         else:
             self._check_existing(wait)
+        if not exists:
+            self._create_atomically()
         self.connection = _connect(self.path, read_only, wait)
-        if not read_only and not exists:
-            self._create_schema()  # an existing store was checked for its schema version above
 
     def _check_existing(self, wait: float) -> None:
         # Inspect read-only first so that a foreign DuckDB database is never written to.
@@ -236,12 +236,34 @@ class Store:
             raise StoreError(f"{self.path}: store schema {row and row[0]} is newer than this "
                              f"mapper understands ({SCHEMA_VERSION})", hint="upgrade mapper")
 
-    def _create_schema(self) -> None:
-        with self.transaction() as con:
+    def _create_atomically(self) -> None:
+        """Build the new store under a temporary name and rename it into place.
+
+        A kill at any moment leaves either no store or a whole one, never an empty
+        DuckDB file that would later be refused as foreign.
+        """
+        partial = self.path.with_name(f".{self.path.name}.creating-{os.getpid()}")
+        for leftover in (partial, partial.with_name(partial.name + ".wal")):
+            leftover.unlink(missing_ok=True)
+        con = duckdb.connect(str(partial))
+        try:
+            con.execute("BEGIN TRANSACTION")
             for statement in _SCHEMA:
                 con.execute(statement)
             con.execute("INSERT OR IGNORE INTO mapper_meta VALUES ('schema_version', ?), "
                         "('created_by', ?)", [str(SCHEMA_VERSION), f"mapper {__version__}"])
+            con.execute("COMMIT")
+            con.execute("CHECKPOINT")
+        finally:
+            con.close()
+        try:
+            os.link(partial, self.path)  # fails if another process created the store meanwhile
+        except FileExistsError:
+            pass
+        except OSError:  # file systems without hard links
+            if not self.path.exists():
+                os.replace(partial, self.path)
+        partial.unlink(missing_ok=True)
 
     # -- plumbing ---------------------------------------------------------------------
     def close(self) -> None:

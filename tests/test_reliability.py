@@ -167,7 +167,8 @@ def test_quirky_campaign_imports_the_same_samples(tmp_path):
 
 # -- 2. interrupted writes ---------------------------------------------------------------
 N_FILES = 160  # import writes files in batches: enough files for several batches
-IMPORT_TRIALS = 12
+IMPORT_TRIALS = 8
+EARLY_TRIALS = 24
 FIT_TRIALS = 5
 
 
@@ -226,29 +227,100 @@ def clean_run(tmp_path_factory, big_campaign) -> dict:
             "counts": store_is_whole(db)}
 
 
+def _kill_at_batch(command: list[str], extra_delay: float, pause: float) -> int | None:
+    """Start ``command`` with the between-batches pause, kill it once a batch has committed.
+
+    The import announces each committed batch on stderr and then holds ``pause`` seconds
+    (a test-only hook), so a kill ``extra_delay < pause`` after the announcement lands,
+    on any machine speed, with some files stored and others not yet; a larger delay lands
+    among the following writes. Returns the exit status if the command ended first.
+    """
+    env = dict(os.environ, MAPPER_LOCK_WAIT="5", MAPPER_TEST_PAUSE_AFTER_BATCH=str(pause))
+    process = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True,
+                               env=env, start_new_session=True)
+    try:
+        for line in process.stderr:
+            if "batch committed" in line:
+                break
+        time.sleep(extra_delay)
+        finished = process.poll()
+        if finished is None:
+            process.send_signal(signal.SIGKILL)
+        process.wait(timeout=60)
+        return finished
+    finally:
+        process.stderr.close()
+        try:
+            os.killpg(process.pid, signal.SIGKILL)
+        except (ProcessLookupError, PermissionError):
+            pass
+
+
+def _check_recovers(db: Path, big_campaign: Path, clean_run: dict, trial) -> None:
+    again = run_mapper("import", big_campaign, db=db)
+    assert again.returncode == 0, (trial, again.stdout, again.stderr)
+    assert store_is_whole(db)["tests"] == N_FILES
+    final = snapshot(db)
+    for table in ("campaigns", "samples", "mapper_meta"):
+        assert final[table] == clean_run["imported"][table], (trial, table)
+
+
 @pytest.mark.slow
-def test_import_killed_at_random_moments_loses_nothing(tmp_path, big_campaign, clean_run):
+def test_import_killed_between_and_during_batches_loses_nothing(tmp_path, big_campaign, clean_run):
     rng = random.Random(20260304)
-    landed_mid_import = 0
+    pause = 1.0
     for trial in range(IMPORT_TRIALS):
         db = tmp_path / f"kill_{trial}.duckdb"
-        # half the kills are timed from the start (some land during start-up), half from
-        # the moment the write-ahead log appears (they land among the file writes)
-        watch = db.with_name(db.name + ".wal") if trial % 2 else None
-        finished = _kill_after(_command(db, "import", big_campaign), rng.uniform(0.0, 0.8) if watch
-                               else rng.uniform(0.3, 1.8), watch)
+        # even trials: killed inside the pause, between two committed batches (always
+        # mid-import); odd trials: killed after the pause, among the next batch's writes
+        between = trial % 2 == 0
+        delay = rng.uniform(0.05, 0.5 * pause) if between else pause + rng.uniform(0.0, 0.3)
+        finished = _kill_at_batch(_command(db, "import", big_campaign), delay, pause)
+        counts = store_is_whole(db)
+        if between:
+            assert finished is None, trial
+            assert 0 < counts["tests"] < N_FILES, (trial, counts)
+        _check_recovers(db, big_campaign, clean_run, trial)
+
+
+@pytest.mark.slow
+def test_import_killed_in_its_first_second_never_bricks_the_store(tmp_path, big_campaign, clean_run):
+    """Kills during start-up and store creation leave no store or a whole one (issue: an
+    empty DuckDB file left by a kill between creating the file and committing its schema)."""
+    rng = random.Random(11)
+    aimed_at_creation = 0
+    for trial in range(EARLY_TRIALS):
+        db = tmp_path / f"early_{trial}.duckdb"
+        if trial % 2:  # anywhere in the first second
+            _kill_after(_command(db, "import", big_campaign), rng.uniform(0.0, 1.0))
+        else:  # the moment the store is being built: poll for its temporary file every ms
+            aimed_at_creation += _kill_while_creating(_command(db, "import", big_campaign), db,
+                                                      rng.uniform(0.0, 0.005))
         if db.exists():
-            counts = store_is_whole(db)
-            if finished is None and 0 < counts["tests"] < N_FILES:
-                landed_mid_import += 1
-        again = run_mapper("import", big_campaign, db=db)
-        assert again.returncode == 0, (trial, again.stdout, again.stderr)
-        assert store_is_whole(db)["tests"] == N_FILES
-        final = snapshot(db)
-        for table in ("campaigns", "samples", "mapper_meta"):
-            assert final[table] == clean_run["imported"][table], (trial, table)
-    print(f"import kill trials: {IMPORT_TRIALS}, landed mid-import: {landed_mid_import}")
-    assert landed_mid_import >= 1  # the experiment did interrupt real writes
+            store_is_whole(db)  # opens through mapper's own checks: never "not a mapper store"
+        _check_recovers(db, big_campaign, clean_run, trial)
+    assert aimed_at_creation >= 1  # at least one kill landed while the store was being built
+
+
+def _kill_while_creating(command: list[str], db: Path, delay: float) -> int:
+    """Kill ``command`` ``delay`` s after its temporary store file appears; 1 if it did."""
+    process = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+                               start_new_session=True)
+    partial = db.with_name(f".{db.name}.creating-{process.pid}")
+    seen = 0
+    limit = time.monotonic() + 60
+    while process.poll() is None and time.monotonic() < limit:
+        if partial.exists():
+            seen = 1
+            time.sleep(delay)
+            break
+        time.sleep(0.001)
+    try:
+        os.killpg(process.pid, signal.SIGKILL)
+    except (ProcessLookupError, PermissionError):
+        pass
+    process.wait(timeout=60)
+    return seen
 
 
 @pytest.mark.slow
