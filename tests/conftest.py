@@ -67,7 +67,7 @@ def write_campaign(folder: Path, tests: list[dict], name: str = "Trial campaign"
 def run_mapper(*args, db: Path | None = None, cwd: Path | None = None, env: dict | None = None,
                timeout: float = 300) -> subprocess.CompletedProcess:
     """Run the installed console command (the real entry point)."""
-    command = [str(ENTRY_POINT)] if ENTRY_POINT.exists() else [sys.executable, "-m", "mapper.cli"]
+    command = [str(ENTRY_POINT)] if ENTRY_POINT.exists() else [sys.executable, "-m", "mapper.app.cli"]
     if db is not None:
         command += ["--db", str(db)]
     full_env = dict(os.environ, **(env or {}))

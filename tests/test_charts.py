@@ -9,7 +9,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from mapper import charts
+from mapper.presentation import charts
 
 UNITS = {"input": "%", "output": "cm"}
 STEP_TIME = 20.0

@@ -10,8 +10,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from mapper import demo
-from mapper.demo import (
+from mapper.demo import scenario as demo
+from mapper.demo.scenario import (
     CLEAN_EXCHANGER,
     FOULED_EXCHANGER,
     linearised_parameters,

@@ -14,10 +14,10 @@ from scipy.integrate import solve_ivp
 from scipy.signal import lfilter
 
 from mapper.errors import DataError, IdentificationError
-from mapper.estimators import two_point_coefficients
-from mapper.identify import METHODS, FitResult, identify
-from mapper.models import simulate_fopdt, simulate_integrating, step_response
-from mapper.uncertainty import cramer_rao_sd, t_quantile
+from mapper.identification.estimators import two_point_coefficients
+from mapper.identification.identify import ESTIMATORS, FitResult, identify
+from mapper.identification.models import simulate_fopdt, simulate_integrating, step_response
+from mapper.identification.uncertainty import cramer_rao_sd, t_quantile
 
 ROW_KEYS = {
     "model", "method", "gain", "gain_lo", "gain_hi", "time_constant", "time_constant_lo",
@@ -94,7 +94,7 @@ def test_t_quantile_against_tables():
 def test_methods_cross_check_on_noise_free_data():
     K, tau, theta = -1.5, 20.0, 5.3
     t, u, y, _ = fopdt_test(K, tau, theta, T=0.5, settle=10.0)
-    results = {m: identify(t, u, y, method=m) for m in METHODS}
+    results = {m: identify(t, u, y, method=m) for m in ESTIMATORS}
     ls = results["least_squares"]
     assert ls.gain == pytest.approx(K, rel=1e-6)
     assert ls.time_constant == pytest.approx(tau, rel=1e-5)

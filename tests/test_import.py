@@ -12,8 +12,8 @@ import pandas as pd
 import pytest
 
 from conftest import run_mapper, write_campaign, write_step_csv
-from mapper.ingest import read_signals
-from mapper.store import PARAM_COLUMNS, Store
+from mapper.store.ingest import read_signals
+from mapper.store.database import PARAM_COLUMNS, Store
 
 
 def stored(db: Path) -> list[tuple]:

@@ -18,8 +18,9 @@ from scipy.integrate import solve_ivp
 
 from conftest import run_mapper
 from mapper.errors import DataError
-from mapper.ingest import Signals, find_moves, read_signals, split_signals
-from mapper.store import Store
+from mapper.store.ingest import read_signals
+from mapper.store.segment import Signals, find_moves, split_signals
+from mapper.store.database import Store
 
 AREA, OUTLET, DELAY = 1.5, 0.5, 4.0
 FLOWS = [1.00, 1.05, 1.10, 1.15, 1.10, 1.05, 1.00, 0.95]  # staircase up, then down
@@ -75,7 +76,7 @@ def test_every_move_found_in_order_with_right_parameters(export):
     assert signals.time_zone == "+02:00"
     windows = split_signals(signals, period=0.5)
     assert len(windows) == len(FLOWS) - 1
-    from mapper.identify import identify
+    from mapper.identification.identify import identify
     for i, window in enumerate(windows):
         q1, q2 = FLOWS[i], FLOWS[i + 1]
         h1, h2 = (q1 / OUTLET) ** 2, (q2 / OUTLET) ** 2
@@ -142,7 +143,7 @@ def test_log_gives_the_same_map_as_separate_files(tmp_path, export):
     assert imported.returncode == 0, imported.stderr
     assert "day_log.csv: 7 input moves" in imported.stdout
     assert run_mapper("fit", db=db).returncode == 0
-    from mapper.opmap import build_map
+    from mapper.analysis.opmap import build_map
     with Store(db, read_only=True) as store:
         maps = {name: build_map(store.params(campaign=name)) for name in ("from the log", "separate files")}
         windows = store.connection.execute(

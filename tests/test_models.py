@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from scipy import signal
 
-from mapper.models import (
+from mapper.identification.models import (
     fopdt_sensitivities,
     simulate_fopdt,
     simulate_integrating,

@@ -1,4 +1,4 @@
-"""Tests of mapper.opmap (trends, bands, lookups) and mapper.compare (repeats, directions, campaigns)."""
+"""Tests of mapper.analysis.opmap (trends, bands, lookups) and mapper.analysis.compare (repeats, directions, campaigns)."""
 
 from __future__ import annotations
 
@@ -11,8 +11,9 @@ from scipy import stats
 from scipy.integrate import solve_ivp
 
 from mapper.errors import DataError, OutOfRangeError
-from mapper.opmap import (build_map, cluster_levels, compare_campaigns, compare_directions,
-                          compare_repeats, fit_trend, parameter_values)
+from mapper.analysis.compare import compare_campaigns, compare_directions, compare_repeats
+from mapper.analysis.opmap import build_map, parameter_values
+from mapper.analysis.trends import cluster_levels, fit_trend
 
 Z = 1.959963984540054
 

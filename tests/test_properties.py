@@ -3,7 +3,7 @@
 Whatever comes in, the answer is a checked result or a :class:`mapper.errors.MapperError`
 (which the command line turns into one message and exit status 1), never another
 exception. A result that comes back keeps the reader's promises: finite values, time
-strictly increasing from zero, at least ``MIN_SAMPLES`` samples.
+strictly increasing from zero, at least ``MIN_FILE_SAMPLES`` samples.
 """
 
 from __future__ import annotations
@@ -18,7 +18,9 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from mapper.errors import MapperError
-from mapper.ingest import MIN_SAMPLES, read_signals, split_signals
+from mapper.store.ingest import read_signals
+from mapper.constants import MIN_FILE_SAMPLES
+from mapper.store.segment import split_signals
 
 SETTINGS = settings(max_examples=150, deadline=None, derandomize=True,
                     suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
@@ -26,7 +28,7 @@ COLUMNS = ("t", "u", "y")
 
 
 def _check_signals(signals) -> None:
-    assert len(signals.t) == len(signals.u) == len(signals.y) >= MIN_SAMPLES
+    assert len(signals.t) == len(signals.u) == len(signals.y) >= MIN_FILE_SAMPLES
     for values in (signals.t, signals.u, signals.y):
         assert np.isfinite(values).all()
     assert signals.t[0] == 0 and (np.diff(signals.t) > 0).all()
@@ -45,7 +47,7 @@ def _read(path: Path):
     except MapperError:
         return signals
     for piece in pieces:
-        assert len(piece["t"]) >= MIN_SAMPLES and np.isfinite(piece["y"]).all()
+        assert len(piece["t"]) >= MIN_FILE_SAMPLES and np.isfinite(piece["y"]).all()
     return signals
 
 
@@ -110,7 +112,7 @@ def test_random_tables_give_signals_or_a_mapper_error(frame, kind):
 
 # -- the fitter ---------------------------------------------------------------------------
 def _identify():
-    from mapper.identify import identify
+    from mapper.identification.identify import identify
     return identify
 
 

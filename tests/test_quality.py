@@ -1,13 +1,13 @@
-"""Step finding and test checks (thresholds are common practice, see mapper.quality)."""
+"""Step finding and test checks (thresholds are common practice, see mapper.identification.quality)."""
 
 from __future__ import annotations
 
 import numpy as np
 import pytest
 
-from mapper.identify import identify
-from mapper.models import simulate_fopdt
-from mapper.quality import find_step, grade, noise_sd
+from mapper.identification.identify import identify
+from mapper.identification.models import simulate_fopdt
+from mapper.identification.quality import find_step, grade, noise_sd
 
 
 def plant(u, T=1.0, K=2.0, tau=20.0, theta=4.0, y0=30.0):

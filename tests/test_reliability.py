@@ -35,8 +35,8 @@ import pytest
 
 from conftest import ENTRY_POINT, run_mapper, write_campaign
 from fault_corpus import FAULTS, ODD_EXPORTS, clean_frame, csv_text
-from mapper.ingest import read_signals
-from mapper.store import Store
+from mapper.store.ingest import read_signals
+from mapper.store.database import Store
 
 PACKAGE = Path(__file__).resolve().parents[1] / "mapper"
 TABLES = ("mapper_meta", "campaigns", "tests", "samples", "fits")
@@ -173,7 +173,7 @@ FIT_TRIALS = 5
 
 
 def _command(db: Path, *args) -> list[str]:
-    head = [str(ENTRY_POINT)] if ENTRY_POINT.exists() else [sys.executable, "-m", "mapper.cli"]
+    head = [str(ENTRY_POINT)] if ENTRY_POINT.exists() else [sys.executable, "-m", "mapper.app.cli"]
     return head + ["--db", str(db), *map(str, args)]
 
 
@@ -347,7 +347,7 @@ def test_fit_killed_at_random_moments_loses_nothing(tmp_path, clean_run):
 
 # -- 3. concurrent use ------------------------------------------------------------------
 def _hold(db: Path, read_only: bool) -> subprocess.Popen:
-    code = ("import sys, time; from mapper.store import Store; "
+    code = ("import sys, time; from mapper.store.database import Store; "
             f"s = Store(sys.argv[1], read_only={read_only}); print('ready', flush=True); time.sleep(120)")
     holder = subprocess.Popen([sys.executable, "-c", code, str(db)], stdout=subprocess.PIPE, text=True,
                               cwd=str(PACKAGE.parent))
@@ -457,7 +457,7 @@ SQL_PIECES = {"statement", "sql", "where", "relation_sql", "column_sql", "names"
 
 def test_sql_is_never_built_from_values():
     checked = 0
-    for source in sorted(PACKAGE.glob("*.py")):
+    for source in sorted(PACKAGE.rglob("*.py")):
         tree = ast.parse(source.read_text(), filename=str(source))
         for call in ast.walk(tree):
             if not (isinstance(call, ast.Call) and isinstance(call.func, ast.Attribute)
@@ -474,12 +474,12 @@ def test_sql_is_never_built_from_values():
             loose = _formatted_names(first) - SQL_PIECES - {"len"}
             assert not loose, f"{source.name}:{call.lineno} puts {sorted(loose)} into SQL text"
     assert checked >= 20
-    schema = ast.parse((PACKAGE / "store.py").read_text())
+    schema = ast.parse((PACKAGE / "store" / "database.py").read_text())
     # `statement` walks the constant schema list: every element a plain string constant
     listed = [node.value for node in ast.walk(schema) if isinstance(node, ast.Assign)
               and any(getattr(target, "id", "") == "_SCHEMA" for target in node.targets)]
     assert listed and all(isinstance(e, ast.Constant) for e in listed[0].elts)
-    store = (PACKAGE / "store.py").read_text()
+    store = (PACKAGE / "store" / "database.py").read_text()
     # the only interpolated pieces: constant reader options and header-checked column names
     assert "column names with double quotes are not supported" in store
     assert "read_csv(?{options})" in store

@@ -13,7 +13,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from mapper import charts, report
+from mapper.presentation import charts
+from mapper.presentation import report
 from mapper.errors import MapperError
 
 EVIL = "<script>alert(1)</script>"

@@ -1,4 +1,4 @@
-"""Tests of mapper.tuning: PI rules, settings, exact-frequency-response margins, slowdown."""
+"""Tests of mapper.analysis.tuning: PI rules, settings, exact-frequency-response margins, slowdown."""
 
 from __future__ import annotations
 
@@ -9,8 +9,8 @@ import pytest
 from scipy import signal
 
 from mapper.errors import DataError
-from mapper.tuning import (PITuning, dimensionless_gain, frequency_margins, lambda_pi, loop_margins,
-                           quick_peak_sensitivity, search_grid, simc_pi, slowdown, tune)
+from mapper.analysis.margins import frequency_margins, loop_margins, quick_peak_sensitivity, search_grid
+from mapper.analysis.tuning import PITuning, dimensionless_gain, lambda_pi, simc_pi, slowdown, tune
 
 
 # --- tuning rules -------------------------------------------------------------------------------

@@ -1,4 +1,4 @@
-"""Tests of mapper.verdict on nonlinear plants simulated with scipy.integrate.solve_ivp.
+"""Tests of mapper.analysis.verdict on nonlinear plants simulated with scipy.integrate.solve_ivp.
 
 Each plant is linearised at several operating levels by a small step simulated with solve_ivp
 (gain = settled change / step, time constant = time to 63.2 % of the change, common practice); a
@@ -17,8 +17,8 @@ import pytest
 from scipy.integrate import solve_ivp
 
 from mapper.errors import DataError
-from mapper.tuning import loop_margins
-from mapper.verdict import CAUTION, decide
+from mapper.analysis.margins import loop_margins
+from mapper.analysis.verdict import CAUTION, decide
 
 Z = 1.959963984540054
 

@@ -14,12 +14,12 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .errors import MapperError, NotFoundError
-from .models import simulate_fopdt, simulate_integrating
-from .opmap import (OperatingMap, build_map, compare_campaigns, compare_directions,
-                    compare_repeats)
-from .store import Store
-from .verdict import Verdict, decide
+from mapper.analysis.compare import compare_campaigns, compare_directions, compare_repeats
+from mapper.analysis.opmap import OperatingMap, build_map
+from mapper.analysis.verdict import Verdict, decide
+from mapper.errors import MapperError, NotFoundError
+from mapper.identification.models import simulate_fopdt, simulate_integrating
+from mapper.store.database import Store
 
 SAFETY_NOTE = ("Step tests and new tuning can hurt people and equipment: agree limits with "
                "operations, stay clear of alarm and trip limits, verify settings before use, and "
@@ -154,10 +154,10 @@ def _iter_tests(store: Store, params: pd.DataFrame, *, batch: int = 32):
     """Per-test items for the report, in report order, read from the store lazily.
 
     The params rows are sorted first (rejected, suspect, good, then by level; see
-    :func:`mapper.report.test_sort_key`); samples are then read a small batch of tests at
+    :func:`mapper.presentation.report.test_sort_key`); samples are then read a small batch of tests at
     a time, so at most ``batch`` tests' samples are in memory whatever the campaign size.
     """
-    from .report import test_sort_key
+    from mapper.presentation.report import test_sort_key
     rows = sorted(params.to_dict("records"), key=test_sort_key)
     for start in range(0, len(rows), batch):
         chunk = rows[start:start + batch]
@@ -192,7 +192,7 @@ def write_campaign_report(store_path, out: Path, *, campaign: str | None = None,
                           schedule_out: Path | None = None) -> ReportOutcome:
     """The self-contained HTML report of a campaign (and PNG charts when ``png_dir``; the
     schedule CSV too when ``schedule_out``)."""
-    from .report import write_report
+    from mapper.presentation.report import write_report
     data, verdict = verdict_for(store_path, campaign=campaign, ms_max=ms_max, slowdown_max=slowdown_max,
                                 schedule_out=schedule_out)
     opmap = build_map(data.params)
@@ -223,7 +223,7 @@ def analyse_store(store_path, *, out_dir: Path, campaign: str | None = None) -> 
 
 def sample_campaign_folder() -> Path:
     """The bundled sample campaign (beside the package in a source checkout)."""
-    return Path(__file__).resolve().parents[1] / "sample_campaign"
+    return Path(__file__).resolve().parents[2] / "sample_campaign"
 
 
 @dataclass
@@ -243,9 +243,9 @@ def run_demo(out_dir: Path, *, png: bool = True) -> DemoOutcome:
     Never touches any other store: the demo store lives in ``out_dir`` and is replaced on
     each run.
     """
-    from .fitting import fit_store
-    from .ingest import import_sources
-    from .output import format_records
+    from mapper.identification.fitting import fit_store
+    from mapper.presentation.output import format_records
+    from mapper.store.ingest import import_sources
     started = time.perf_counter()
     source = sample_campaign_folder()
     folders = sorted(p for p in source.iterdir() if (p / "campaign.toml").is_file()) if source.is_dir() else []

@@ -35,12 +35,12 @@ from typing import IO, Any
 import pandas as pd
 import vl_convert
 
-from mapper import charts
 from mapper.errors import MapperError
+from mapper.presentation import charts
 
 _QUALITY_ORDER = {"rejected": 0, "suspect": 1, "good": 2}
 
-METHODS: tuple[tuple[str, str], ...] = (
+METHOD_NOTES: tuple[tuple[str, str], ...] = (
     ("Graphical 63.2 % method",
      "Gain is the change in output over the change in input; dead time runs from the input "
      "change to the first sustained output move; the time constant from there to 63.2 % of the "
@@ -473,14 +473,14 @@ def _overlay(page: _Page, series: Sequence[charts.OverlaySeries], spec_id: str,
 
 def _methods_section(page: _Page) -> None:
     page.add('<section id="methods"><h2>Methods and sources</h2><dl>')
-    for name, text in METHODS:
+    for name, text in METHOD_NOTES:
         page.add(f"<dt><strong>{_e(name)}</strong></dt><dd>{_e(text)}</dd>")
     page.add("</dl></section>")
 
 
 def _head(campaign: Mapping[str, Any]) -> str:
     title = f"{campaign.get('name', 'Campaign')}: step-test report"
-    stamp = _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
+    stamp = _dt.datetime.now(_dt.UTC).strftime("%Y-%m-%d %H:%M UTC")
     toc = "".join(f'<li><a href="#{a}">{b}</a></li>' for a, b in (
         ("summary", "Campaign summary"), ("verdict", "Verdict"), ("map", "Operating map"),
         ("comparisons", "Comparisons"), ("schedule", "Schedule and tuning sheet"),

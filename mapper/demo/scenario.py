@@ -20,9 +20,9 @@ import argparse
 import csv
 import io
 import math
+from collections.abc import Callable
 from dataclasses import dataclass, replace
 from pathlib import Path
-from typing import Callable
 
 import numpy as np
 from scipy.integrate import solve_ivp

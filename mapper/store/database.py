@@ -22,8 +22,8 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 
-from . import __version__
-from .errors import DataError, NotAStoreError, NotFoundError, StoreError, StoreInUseError
+from mapper import __version__
+from mapper.errors import DataError, NotAStoreError, NotFoundError, StoreError, StoreInUseError
 
 SCHEMA_VERSION = 1
 DEFAULT_STORE = "mapper.duckdb"
@@ -269,7 +269,7 @@ class Store:
     def close(self) -> None:
         self.connection.close()
 
-    def __enter__(self) -> "Store":
+    def __enter__(self) -> Store:
         return self
 
     def __exit__(self, *exc) -> None:
@@ -313,7 +313,7 @@ class Store:
     def add_tests(self, campaign, windows: Sequence) -> list[int]:
         """Store test windows (of one or several files) in one transaction.
 
-        ``windows`` are :class:`mapper.ingest.TestWindow` objects. Returns the new ids.
+        ``windows`` are :class:`mapper.store.ingest.TestWindow` objects. Returns the new ids.
         Rows and samples go in as columnar tables, not row by row.
         """
         if not windows:

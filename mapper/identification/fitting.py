@@ -21,8 +21,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .identify import METHODS, identify
-from .store import Store
+from mapper.identification.identify import ESTIMATORS, identify
+from mapper.store.database import Store
 
 BATCH = 64  # tests read from the store per query
 SAVE_BATCH = 256  # fits written per transaction (each costs tens of ms whatever its size)
@@ -115,15 +115,15 @@ def fit_store(store: Store, *, refit: bool = False, method: str = "least_squares
     refit : bool, default False
         Redo every test, replacing earlier fits.
     method : str, default "least_squares"
-        One of :data:`mapper.identify.METHODS`.
+        One of :data:`mapper.identification.identify.ESTIMATORS`.
     workers : int, optional
         Processes to use, the calling one included (it reads, writes and fits while
         ``workers - 1`` helpers fit); default all cores for large campaigns, one for
         small ones.
     """
-    if method not in METHODS:
-        from .errors import MapperError
-        raise MapperError(f"unknown method '{method}'", hint="choose one of " + ", ".join(METHODS))
+    if method not in ESTIMATORS:
+        from mapper.errors import MapperError
+        raise MapperError(f"unknown method '{method}'", hint="choose one of " + ", ".join(ESTIMATORS))
     test_ids = store.test_ids(unfitted_only=not refit)
     total = len(test_ids)
     if workers is None:

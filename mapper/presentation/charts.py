@@ -2,7 +2,7 @@
 
 Every builder takes plain data (the ``test_params`` frame, the trend frame, the verdict
 dict, sample arrays) and returns an :class:`altair.Chart` (or a layered / concatenated
-chart). Builders never save anything; :mod:`mapper.report` turns the charts into HTML
+chart). Builders never save anything; :mod:`mapper.presentation.report` turns the charts into HTML
 and PNG, and a notebook shows them inline by itself.
 
 Conventions
@@ -48,7 +48,7 @@ PALETTE: dict[str, str] = {
 }
 
 #: Point shape of each step direction.
-SHAPES: dict[str, str] = {"up": "triangle-up", "down": "triangle-down"}
+DIRECTION_MARKS: dict[str, str] = {"up": "triangle-up", "down": "triangle-down"}
 
 #: Target number of samples kept per test in a chart.
 POINTS_PER_TEST = 300
@@ -118,7 +118,7 @@ def _flags(value: Any) -> list[str]:
 
 def _direction_scales() -> tuple[alt.Scale, alt.Scale]:
     colour = alt.Scale(domain=_DIRECTIONS, range=[PALETTE[d] for d in _DIRECTIONS])
-    shape = alt.Scale(domain=_DIRECTIONS, range=[SHAPES[d] for d in _DIRECTIONS])
+    shape = alt.Scale(domain=_DIRECTIONS, range=[DIRECTION_MARKS[d] for d in _DIRECTIONS])
     return colour, shape
 
 

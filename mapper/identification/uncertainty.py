@@ -10,17 +10,16 @@ from __future__ import annotations
 import numpy as np
 from scipy.signal import lfilter
 
-from .models import fopdt_sensitivities
+from mapper.constants import Z95
+from mapper.identification.models import fopdt_sensitivities
 
 __all__ = [
-    "Z95",
     "residual_autocorrelation",
     "sandwich_covariance",
     "t_quantile",
     "cramer_rao_sd",
 ]
 
-Z95 = 1.959963984540054  # two-sided 95 % point of the standard normal
 MAX_AUTOCORRELATION = 0.98
 
 

@@ -3,7 +3,7 @@
 Point methods read times off the normalised step response (graphical 63.2 %,
 two-point, area); the default least-squares estimator fits the measured input by
 output error with variable projection. Each returns a plain :class:`Estimate`;
-:mod:`mapper.identify` turns it into a :class:`~mapper.identify.FitResult`.
+:mod:`mapper.identification.identify` turns it into a :class:`~mapper.identification.identify.FitResult`.
 Internally time is counted in samples so the numerics do not depend on the time scale.
 """
 
@@ -15,8 +15,9 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import fft as sp_fft
 
-from .models import fopdt_unit_response, split_dead_time, unit_response_rows
-from .quality import StepInfo
+from mapper.constants import MIN_RESPONSE_SAMPLES
+from mapper.identification.models import fopdt_unit_response, split_dead_time, unit_response_rows
+from mapper.identification.quality import StepInfo
 
 __all__ = [
     "Estimate",
@@ -201,7 +202,6 @@ def area(shape: StepShape, step: StepInfo) -> Estimate:
 
 # --- least squares (output error, variable projection) ----------------------------------
 
-MIN_AFTER_SAMPLES = 3  # the response must start at least this many samples before the end
 TAU_MIN_SAMPLES = 0.05  # below this the lag is invisible at the sample rate
 TAU_MAX_POST_RECORDS = 50.0  # upper bound on tau, in lengths of the record after the step
 STATISTICAL_TOLERANCE = 1e-4  # stop when a step moves the estimate under 0.01 sd
@@ -405,7 +405,7 @@ def least_squares_fopdt(
     """
     n = y.size
     n_post = n - step_index
-    d_max = n_post - MIN_AFTER_SAMPLES
+    d_max = n_post - MIN_RESPONSE_SAMPLES
     if d_max < 0:
         return None
     tau_hi = TAU_MAX_POST_RECORDS * max(n_post, 1)
@@ -485,7 +485,7 @@ def least_squares_integrating(
     same whole-sample profile and Levenberg-Marquardt refinement as the FOPDT fit.
     """
     n = y.size
-    d_max = n - step_index - MIN_AFTER_SAMPLES
+    d_max = n - step_index - MIN_RESPONSE_SAMPLES
     if d_max < 0:
         return None
     profile = _Profile(y, d_max)

@@ -13,8 +13,9 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from mapper.opmap import (LABELS, UNITS, Z95, build_map, cluster_levels, format_level, parameter_values,
-                          usable_tests)
+from mapper.analysis.opmap import UNITS, build_map, format_level, parameter_values, usable_tests
+from mapper.analysis.trends import LABELS, cluster_levels
+from mapper.constants import Z95
 
 COMPARED = ("gain", "time_constant", "dead_time")
 CAUSES = {
@@ -195,7 +196,7 @@ def compare_campaigns(params_a: pd.DataFrame, params_b: pd.DataFrame, *, against
 
     Notes
     -----
-    Both campaigns are mapped (:func:`mapper.opmap.build_map`) and their trends compared at the tested
+    Both campaigns are mapped (:func:`mapper.analysis.opmap.build_map`) and their trends compared at the tested
     levels inside the shared range; a change is significant where the difference exceeds 1.96 times
     the combined standard error of the two trends.
     """

@@ -3,9 +3,9 @@
 This module owns the trends of each identified parameter against the operating level (or any other
 column, e.g. the input), their 95 % bands, the variation over the tested range and whether that
 variation is significant, and lookups at any level inside the range. Comparisons of tests (repeats,
-up against down, campaign against campaign) live in :mod:`mapper.compare` and are re-exported here.
+up against down, campaign against campaign) live in :mod:`mapper.analysis.compare`.
 
-The trend fitting itself (weighted polynomials, extra scatter, shape choice) is in :mod:`mapper.trends`.
+The trend fitting itself (weighted polynomials, extra scatter, shape choice) is in :mod:`mapper.analysis.trends`.
 
 Input is a ``pandas.DataFrame`` with the columns of the store view ``test_params``. Rejected tests are
 left out. Units: time constant and dead time in s, gain in output units per input unit (for an
@@ -21,8 +21,9 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
+from mapper.analysis.trends import LABELS, Trend, cluster_levels, fit_trend
+from mapper.constants import Z95
 from mapper.errors import DataError, OutOfRangeError
-from mapper.trends import LABELS, SHAPES, Z95, Trend, cluster_levels, fit_trend  # noqa: F401
 
 PARAMETERS = ("gain", "time_constant", "dead_time", "gain_over_time_constant")
 UNITS = {"gain": "", "time_constant": " s", "dead_time": " s", "gain_over_time_constant": " per s"}
@@ -254,12 +255,3 @@ def build_map(params: pd.DataFrame, *, against: str = "level") -> OperatingMap:
     levels = tuple(float(np.mean(x[labels == k])) for k in range(labels.max() + 1))
     return OperatingMap(against=against, model=model, level_min=float(x.min()), level_max=float(x.max()),
                         levels=levels, trends=trends, n_tests=int(len(frame)), notes=tuple(notes))
-
-
-def __getattr__(name: str):
-    """Re-export the comparisons (defined in :mod:`mapper.compare`, which builds on this module)."""
-    if name in ("compare_campaigns", "compare_directions", "compare_repeats"):
-        from mapper import compare
-
-        return getattr(compare, name)
-    raise AttributeError(f"module 'mapper.opmap' has no attribute {name!r}")

@@ -15,7 +15,7 @@ import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from .errors import CampaignFileError
+from mapper.errors import CampaignFileError
 
 CAMPAIGN_FILE_NAME = "campaign.toml"
 

@@ -5,10 +5,9 @@ from __future__ import annotations
 import csv
 import io
 import json
-import math
 from collections.abc import Sequence
 
-import numpy as np
+from mapper.records import plain
 
 _TABLE_COLUMNS = {
     "params": [
@@ -22,27 +21,6 @@ _TABLE_COLUMNS = {
         ("significant", "significant"), ("n_tests", "tests"),
     ],
 }
-
-
-def plain(value):
-    """A JSON-ready value: numpy scalars to Python, NaN to None, arrays to lists."""
-    if isinstance(value, dict):
-        return {k: plain(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple, np.ndarray)):
-        return [plain(v) for v in value]
-    if isinstance(value, np.generic):
-        value = value.item()
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    if value is not None and not isinstance(value, (str, int, float, bool)):
-        try:
-            import pandas as pd
-            if pd.isna(value):
-                return None
-        except (TypeError, ValueError):
-            pass
-        return str(value)
-    return value
 
 
 def _cell(value, interval=None) -> str:

@@ -2,7 +2,7 @@
 
 A data recorder or historian export may hold many steps, irregular samples and gaps. This
 module puts samples on a uniform grid and cuts them into one window per input move; the
-windows become tests in :mod:`mapper.ingest`.
+windows become tests in :mod:`mapper.store.ingest`.
 """
 
 from __future__ import annotations
@@ -12,10 +12,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .errors import DataError
-from .quality import median
-
-MIN_SAMPLES = 20
+from mapper.constants import MIN_FILE_SAMPLES
+from mapper.errors import DataError
+from mapper.identification.quality import median
 
 
 @dataclass(frozen=True)
@@ -133,14 +132,14 @@ def split_signals(signals: Signals, *, windows: Sequence[tuple[float, float]] = 
             raise DataError("the input holds no move larger than its noise",
                             hint="check the input column; a step test needs a clear input step")
         plateaus = [moves[i + 1][0] - moves[i][1] for i in range(len(moves) - 1)]
-        long_enough = all(p >= max(MIN_SAMPLES, 0.05 * len(t)) for p in plateaus)
+        long_enough = all(p >= max(MIN_FILE_SAMPLES, 0.05 * len(t)) for p in plateaus)
         if len(moves) == 1 or not long_enough:
             flags = ["several_input_moves"] if len(moves) > 1 else []
             pieces.append((0, len(t), flags))
         else:
             for i, (start, end) in enumerate(moves):
                 before = 0 if i == 0 else moves[i - 1][1] + 1
-                lo = start - max((start - before) // 2, min(MIN_SAMPLES // 2, start - before)) if i else 0
+                lo = start - max((start - before) // 2, min(MIN_FILE_SAMPLES // 2, start - before)) if i else 0
                 hi = moves[i + 1][0] if i + 1 < len(moves) else len(t)
                 flags = []
                 response = median(y[max(hi - 5, lo):hi]) - median(y[lo:start + 1])
@@ -149,9 +148,9 @@ def split_signals(signals: Signals, *, windows: Sequence[tuple[float, float]] = 
                 pieces.append((lo, hi, flags))
     result = []
     for lo, hi, flags in pieces:
-        if hi - lo < MIN_SAMPLES:
+        if hi - lo < MIN_FILE_SAMPLES:
             raise DataError(f"a test window holds only {hi - lo} samples (from {t[lo] if lo < len(t) else t[-1]:g} s)",
-                            hint=f"give windows of at least {MIN_SAMPLES} samples")
+                            hint=f"give windows of at least {MIN_FILE_SAMPLES} samples")
         wt, wu, wy = t[lo:hi], u[lo:hi], y[lo:hi]
         edge = max(3, len(wt) // 10)
         step = float(median(wu[-edge:]) - median(wu[:edge]))

@@ -20,10 +20,11 @@ import numpy as np
 import pandas as pd
 from scipy.optimize import minimize
 
+from mapper.analysis.margins import loop_margins, quick_peak_sensitivity, search_grid
+from mapper.analysis.opmap import OperatingMap, build_map, format_level, format_limit
+from mapper.analysis.tuning import PITuning, dimensionless_gain, tune
 from mapper.errors import DataError
-from mapper.opmap import OperatingMap, build_map, format_level, format_limit
-from mapper.tuning import (PITuning, dimensionless_gain, loop_margins, quick_peak_sensitivity,
-                           search_grid, tune)
+from mapper.records import plain
 
 CAUTION = ("CAUTION: new tuning on a live plant can hurt people and equipment. Agree limits with "
            "operations, stay clear of alarm and trip limits, verify before use (in manual, with the "
@@ -68,7 +69,7 @@ class Verdict:
 
     def to_dict(self) -> dict:
         """The JSON shape of ``mapper verdict --format json`` (non-finite numbers become None)."""
-        return _jsonable({"decision": self.decision, "reasons": list(self.reasons),
+        return plain({"decision": self.decision, "reasons": list(self.reasons),
                           "variation": self.variation, "controller": self.controller,
                           "points": list(self.points), "schedule": list(self.schedule)})
 
@@ -105,20 +106,6 @@ def _round(value):
     if isinstance(value, float):
         return "" if not math.isfinite(value) else f"{value:.6g}"
     return "" if value is None else value
-
-
-def _jsonable(value):
-    if isinstance(value, dict):
-        return {str(k): _jsonable(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_jsonable(v) for v in value]
-    if isinstance(value, (bool, np.bool_)):
-        return bool(value)
-    if isinstance(value, (int, np.integer)):
-        return int(value)
-    if isinstance(value, (float, np.floating)):
-        return float(value) if math.isfinite(value) else None
-    return value
 
 
 def _ranges(ranges):

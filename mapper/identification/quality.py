@@ -2,7 +2,7 @@
 
 This module owns step finding (:func:`find_step`), robust noise estimates and the test
 checks that turn a test into ``good``, ``suspect`` or ``rejected`` with short snake_case
-flags and one sentence per flag. It does no model fitting; :mod:`mapper.identify` calls
+flags and one sentence per flag. It does no model fitting; :mod:`mapper.identification.identify` calls
 :func:`assess` with the fitted model.
 
 The thresholds below are rules of thumb of the trade ("common practice"), not published
@@ -27,18 +27,18 @@ __all__ = [
     "FLAG_TEXT",
 ]
 
-# --- rules of thumb (common practice) -------------------------------------------------
-SETTLE_TIME_CONSTANTS = 4.0  # 98 % of the change is reached after dead time + 4 tau
-MIN_RESPONSE_NOISE_BANDS = 5.0  # step response should be several noise bands (4 sd) wide
-NOISE_BAND_SDS = 4.0  # peak-to-peak noise band taken as +-2 sd
-MIN_SAMPLES_PER_TIME_CONSTANT = 10.0
-DRIFT_FRACTION = 0.10  # pre-step drift, carried over the test, against the response
-MOVE_FRACTION = 0.10  # input moves smaller than this share of the main step are ignored
-QUANTUM_LEVELS = 50  # fewer output levels than this across the response: quantised
-CLIP_SPAN_FRACTION = 0.005  # within 0.5 % of an instrument limit counts as at the limit
-MISFIT_FRACTION = 0.10  # systematic residual beyond 10 % of the response: poor fit
-MIN_BASELINE_SAMPLES = 3
-MIN_AFTER_SAMPLES = 5
+from mapper.constants import (
+    CLIP_SPAN_FRACTION,
+    DRIFT_FRACTION,
+    MIN_BASELINE_SAMPLES,
+    MIN_RESPONSE_NOISE_BANDS,
+    MIN_SAMPLES_PER_TIME_CONSTANT,
+    MISFIT_FRACTION,
+    MOVE_FRACTION,
+    NOISE_BAND_SDS,
+    QUANTUM_LEVELS,
+    SETTLE_TIME_CONSTANTS,
+)
 
 REJECTING_FLAGS = frozenset(
     {

@@ -3,7 +3,7 @@
 This module owns the statistics behind the operating map: polynomial trends (constant, linear,
 quadratic) weighted by each test's own uncertainty plus the extra scatter between tests, the choice
 of the simplest adequate shape, the significance of the variation and the band. It knows nothing of
-the store or of campaigns; :mod:`mapper.opmap` feeds it one parameter at a time.
+the store or of campaigns; :mod:`mapper.analysis.opmap` feeds it one parameter at a time.
 """
 
 from __future__ import annotations
@@ -15,10 +15,10 @@ import numpy as np
 from scipy import stats
 from scipy.optimize import brentq
 
+from mapper.constants import Z95
 from mapper.errors import DataError
 
-Z95 = float(stats.norm.ppf(0.975))
-SHAPES = ("constant", "linear", "quadratic")
+TREND_SHAPES = ("constant", "linear", "quadratic")
 LABELS = {"gain": "gain", "time_constant": "time constant", "dead_time": "dead time",
           "gain_over_time_constant": "gain / time constant"}
 AICC_SUPPORT = 2.0  # shapes within this AICc of the best count as equally supported
@@ -249,13 +249,13 @@ def fit_trend(x, y, sigma, parameter: str) -> Trend:
     if "no_intervals" in flags and chosen["dof"] <= 0:
         flags.append("band_unknown")  # no interval and no repeat scatter to judge the uncertainty by
     return Trend(
-        parameter=parameter, shape=SHAPES[chosen["degree"]],
+        parameter=parameter, shape=TREND_SHAPES[chosen["degree"]],
         coefficients=tuple(float(v) for v in chosen["beta"]),
         covariance=tuple(tuple(float(v) for v in row) for row in chosen["cov"]),
         centre=centre, scale=scale, extra_scatter=math.sqrt(chosen["s2"]), quantile=quantile(chosen),
         level_min=float(x.min()), level_max=float(x.max()), n_tests=int(y.size), n_levels=n_levels,
         p_value=p_value, significant=bool(p_value is not None and p_value < 0.05),
-        aicc={SHAPES[f["degree"]]: float(f["aicc"]) for f in fits},
+        aicc={TREND_SHAPES[f["degree"]]: float(f["aicc"]) for f in fits},
         constant=float(constant["beta"][0]),
         constant_half_width=float(math.sqrt(max(constant["cov"][0, 0], 0.0))) * quantile(constant),
         flags=tuple(flags), alternatives=alternatives,

@@ -9,8 +9,8 @@ times in s; the controller is the ideal PI ``C(s) = kc (1 + 1/(ti s))``.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Callable
 
 import numpy as np
 from scipy.optimize import brentq, minimize_scalar

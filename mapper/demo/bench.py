@@ -24,7 +24,7 @@ import numpy as np
 import pandas as pd
 from scipy.optimize import curve_fit
 
-from .models import simulate_fopdt
+from mapper.identification.models import simulate_fopdt
 
 TOLERANCE = {"gain": 0.03, "time_constant": 0.06}  # dead time: within one sample
 
@@ -106,7 +106,7 @@ def plain_loop(folder: Path, truth: list[TruthRow]) -> dict:
 
 
 def _mapper_accuracy(db: Path, truth: list[TruthRow]) -> float:
-    from .store import Store
+    from mapper.store.database import Store
     with Store(db, read_only=True) as store:
         frame = store.params()
     by_file = {r["file"]: r for r in frame.to_dict("records")}
@@ -116,7 +116,7 @@ def _mapper_accuracy(db: Path, truth: list[TruthRow]) -> float:
 def _run_child(*args: str) -> dict:
     """Run a stage in a fresh process; report its output and peak resident memory."""
     started = time.perf_counter()
-    completed = subprocess.run([sys.executable, "-m", "mapper.bench", *args], capture_output=True, text=True)
+    completed = subprocess.run([sys.executable, "-m", "mapper.demo.bench", *args], capture_output=True, text=True)
     if completed.returncode != 0:
         raise RuntimeError(f"benchmark stage failed: {completed.stderr.strip()[-500:]}")
     result = json.loads(completed.stdout.strip().splitlines()[-1])
@@ -126,9 +126,9 @@ def _run_child(*args: str) -> dict:
 
 def _stage(argv: list[str]) -> None:
     """Child-process entry: one stage, printed as JSON with its own peak memory."""
-    from .fitting import fit_store
-    from .ingest import import_sources
-    from .store import Store
+    from mapper.identification.fitting import fit_store
+    from mapper.store.database import Store
+    from mapper.store.ingest import import_sources
     stage, folder, db = argv[0], Path(argv[1]), Path(argv[2])
     timings = {}
     if stage in ("import", "end_to_end"):
@@ -143,12 +143,12 @@ def _stage(argv: list[str]) -> None:
             fit_store(store, refit=True, workers=workers if stage != "end_to_end" else None)
         timings["fit_seconds"] = time.perf_counter() - started
     if stage == "end_to_end":
-        from .jobs import analyse_store
+        from mapper.app.jobs import analyse_store
         started = time.perf_counter()
         analyse_store(db, out_dir=db.parent / "out")
         timings["analyse_seconds"] = time.perf_counter() - started
     if stage == "bare_scan":
-        from .store import bare_scan
+        from mapper.store.database import bare_scan
         files = sorted(folder.glob("*.csv"))
         started = time.perf_counter()
         bare_scan(files)

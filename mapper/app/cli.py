@@ -6,18 +6,16 @@ on stderr, no traceback unless ``--debug``); 2 wrong usage.
 
 from __future__ import annotations
 
+import functools
 import json
 import sys
 from enum import Enum
 from pathlib import Path
-from typing import Optional
-
-import functools
 
 import typer
 
-from .errors import MapperError
-from .output import format_object, format_records, plain
+from mapper.errors import MapperError
+from mapper.presentation.output import format_object, format_records, plain
 
 app = typer.Typer(add_completion=False, no_args_is_help=True, pretty_exceptions_show_locals=False,
                   pretty_exceptions_enable=False,
@@ -46,7 +44,7 @@ FormatOption = typer.Option(Format.table, "--format", help="table for people, cs
 
 
 @app.callback()
-def _root(db: Optional[Path] = typer.Option(None, "--db", help="store file (default $MAPPER_DB or ./mapper.duckdb)"),
+def _root(db: Path | None = typer.Option(None, "--db", help="store file (default $MAPPER_DB or ./mapper.duckdb)"),
           debug: bool = typer.Option(False, "--debug", help="show the traceback of an error")) -> None:
     _state["db"] = db
     _state["debug"] = debug
@@ -75,7 +73,7 @@ def _guard(command):
 
 
 def _store(**kwargs):
-    from .store import Store
+    from mapper.store.database import Store
     return Store(_state["db"], **kwargs)
 
 
@@ -102,16 +100,16 @@ def _progress(label: str, total_hint: int = 20):
 @_guard
 def import_command(
     sources: list[Path] = typer.Argument(..., help="campaign folders (with campaign.toml) or data files"),
-    time: Optional[str] = typer.Option(None, "--time", help="time column of loose data files"),
-    input: Optional[str] = typer.Option(None, "--input", help="input (stepped) column of loose data files"),
-    output: Optional[str] = typer.Option(None, "--output", help="output (response) column of loose data files"),
-    level: Optional[float] = typer.Option(None, "--level", help="operating level of loose data files"),
-    campaign: Optional[str] = typer.Option(None, "--campaign", help="campaign name for loose data files"),
+    time: str | None = typer.Option(None, "--time", help="time column of loose data files"),
+    input: str | None = typer.Option(None, "--input", help="input (stepped) column of loose data files"),
+    output: str | None = typer.Option(None, "--output", help="output (response) column of loose data files"),
+    level: float | None = typer.Option(None, "--level", help="operating level of loose data files"),
+    campaign: str | None = typer.Option(None, "--campaign", help="campaign name for loose data files"),
     time_unit: str = typer.Option("s", "--time-unit", help="unit of a numeric time column: s, min or h"),
-    period: Optional[float] = typer.Option(None, "--period", help="grid period in seconds for irregular logs"),
+    period: float | None = typer.Option(None, "--period", help="grid period in seconds for irregular logs"),
 ) -> None:
     """Bring a campaign folder or loose data files into the store."""
-    from .ingest import import_campaigns, prepare_sources
+    from mapper.store.ingest import import_campaigns, prepare_sources
     if time_unit not in ("s", "min", "h"):
         raise typer.BadParameter("use s, min or h", param_hint="--time-unit")
     # campaign files are checked before the store is opened, so a faulty one leaves it untouched
@@ -133,10 +131,10 @@ def fit_command(
     refit: bool = typer.Option(False, "--refit", help="redo every test, not only new ones"),
     method: str = typer.Option("least_squares", "--method",
                                help="least_squares, graphical, smith, sundaresan or area"),
-    workers: Optional[int] = typer.Option(None, "--workers", help="processes to use (default: all cores for large campaigns)"),
+    workers: int | None = typer.Option(None, "--workers", help="processes to use (default: all cores for large campaigns)"),
 ) -> None:
     """Identify an FOPDT (or integrating) model for every test not yet fitted."""
-    from .fitting import fit_store
+    from mapper.identification.fitting import fit_store
     with _store() as store:
         summary = fit_store(store, refit=refit, method=method, workers=workers,
                             progress=_progress("fitting"))
@@ -146,10 +144,10 @@ def fit_command(
 @app.command("params")
 @_guard
 def params_command(
-    campaign: Optional[str] = typer.Option(None, "--campaign"),
-    level_min: Optional[float] = typer.Option(None, "--level-min"),
-    level_max: Optional[float] = typer.Option(None, "--level-max"),
-    direction: Optional[Direction] = typer.Option(None, "--direction"),
+    campaign: str | None = typer.Option(None, "--campaign"),
+    level_min: float | None = typer.Option(None, "--level-min"),
+    level_max: float | None = typer.Option(None, "--level-max"),
+    direction: Direction | None = typer.Option(None, "--direction"),
     format: Format = FormatOption,
 ) -> None:
     """One row per test: level, direction, gain, time constant, dead time with 95 % intervals."""
@@ -162,12 +160,12 @@ def params_command(
 @app.command("map")
 @_guard
 def map_command(
-    campaign: Optional[str] = typer.Option(None, "--campaign", help="campaign to map (default: the newest)"),
+    campaign: str | None = typer.Option(None, "--campaign", help="campaign to map (default: the newest)"),
     against: Against = typer.Option(Against.level, "--against", help="map against the output level or the input value"),
     format: Format = FormatOption,
 ) -> None:
     """Trend of each parameter against the operating level, its variation and significance."""
-    from .jobs import operating_map
+    from mapper.app.jobs import operating_map
     data, opmap = operating_map(_state["db"], campaign=campaign, against=against.value)
     rows = opmap.summary()
     if format is not Format.table:
@@ -184,13 +182,13 @@ def map_command(
 @_guard
 def at_command(
     level: float = typer.Argument(..., help="operating level (output units)"),
-    campaign: Optional[str] = typer.Option(None, "--campaign"),
+    campaign: str | None = typer.Option(None, "--campaign"),
     extrapolate: bool = typer.Option(False, "--extrapolate", help="allow a level outside the tested range (with a warning)"),
     against: Against = typer.Option(Against.level, "--against", help="LEVEL is an output level or an input value"),
     format: Format = FormatOption,
 ) -> None:
     """Gain, time constant and dead time at LEVEL, with the 95 % band."""
-    from .jobs import parameters_at
+    from mapper.app.jobs import parameters_at
     answer = parameters_at(_state["db"], level, campaign=campaign, extrapolate=extrapolate,
                            against=against.value)
     if answer.get("warning"):
@@ -201,16 +199,16 @@ def at_command(
 @app.command("verdict")
 @_guard
 def verdict_command(
-    campaign: Optional[str] = typer.Option(None, "--campaign"),
+    campaign: str | None = typer.Option(None, "--campaign"),
     ms_max: float = typer.Option(2.0, "--ms-max", help="largest acceptable maximum sensitivity Ms"),
     slowdown_max: float = typer.Option(2.0, "--slowdown-max", help="largest acceptable slowdown against local tuning"),
-    closed_loop_time: Optional[float] = typer.Option(None, "--closed-loop-time", help="SIMC tau_c in s (default: the dead time)"),
+    closed_loop_time: float | None = typer.Option(None, "--closed-loop-time", help="SIMC tau_c in s (default: the dead time)"),
     rule: str = typer.Option("simc", "--rule", help="local tuning rule: simc or lambda"),
-    schedule_out: Optional[Path] = typer.Option(None, "--schedule-out", help="write the schedule table as CSV"),
+    schedule_out: Path | None = typer.Option(None, "--schedule-out", help="write the schedule table as CSV"),
     format: Format = FormatOption,
 ) -> None:
     """Single model and controller, or a gain schedule: with reasons, margins and the table."""
-    from .jobs import verdict_for
+    from mapper.app.jobs import verdict_for
     data, verdict = verdict_for(_state["db"], campaign=campaign, ms_max=ms_max, slowdown_max=slowdown_max,
                                 closed_loop_time=closed_loop_time, rule=rule, schedule_out=schedule_out)
     result = verdict.to_dict()
@@ -238,7 +236,7 @@ def compare_command(
     format: Format = FormatOption,
 ) -> None:
     """Two campaigns side by side: which parameters moved, where, and whether significantly."""
-    from .jobs import compare_two
+    from mapper.app.jobs import compare_two
     rows = compare_two(_state["db"], first, second)
     if format is Format.table:
         _say(f"- {row['sentence']}" for row in rows)
@@ -250,14 +248,14 @@ def compare_command(
 @_guard
 def report_command(
     out: Path = typer.Option(Path("report.html"), "--out", help="HTML file to write"),
-    png_dir: Optional[Path] = typer.Option(None, "--png-dir", help="also write each chart as PNG here"),
-    campaign: Optional[str] = typer.Option(None, "--campaign"),
-    compare_with: Optional[str] = typer.Option(None, "--compare-with", help="an older campaign to compare against"),
+    png_dir: Path | None = typer.Option(None, "--png-dir", help="also write each chart as PNG here"),
+    campaign: str | None = typer.Option(None, "--campaign"),
+    compare_with: str | None = typer.Option(None, "--compare-with", help="an older campaign to compare against"),
     ms_max: float = typer.Option(2.0, "--ms-max"),
     slowdown_max: float = typer.Option(2.0, "--slowdown-max"),
 ) -> None:
     """Write the self-contained HTML report (opens offline)."""
-    from .jobs import write_campaign_report
+    from mapper.app.jobs import write_campaign_report
     outcome = write_campaign_report(_state["db"], out, campaign=campaign, png_dir=png_dir, ms_max=ms_max,
                                     slowdown_max=slowdown_max, compare_with=compare_with)
     lines = [f"report written to {outcome.path} ({outcome.size_bytes / 1e6:.2f} MB)"]
@@ -273,7 +271,7 @@ def demo_command(
     png: bool = typer.Option(True, "--png/--no-png", help="also write the charts as PNG"),
 ) -> None:
     """Run the whole job on the bundled sample campaign into a fresh folder."""
-    from .jobs import run_demo
+    from mapper.app.jobs import run_demo
     _say(run_demo(out, png=png).lines)
 
 
@@ -283,10 +281,10 @@ def bench_command(
     tests: int = typer.Option(100, "--tests", min=2, help="tests in the synthetic campaign"),
     samples: int = typer.Option(600, "--samples", min=50, help="samples per test"),
     scale: int = typer.Option(10, "--scale", min=2, help="the end-to-end run is repeated at this many times the tests"),
-    json_out: Optional[Path] = typer.Option(None, "--json", help="also write the figures as JSON"),
+    json_out: Path | None = typer.Option(None, "--json", help="also write the figures as JSON"),
 ) -> None:
     """Speed and memory against the plain alternatives, measured side by side in one run."""
-    from .bench import bench_lines, run_bench
+    from mapper.demo.bench import bench_lines, run_bench
     figures = run_bench(tests=tests, samples=samples, scale=scale)
     _say(bench_lines(figures))
     if json_out is not None:

@@ -4,8 +4,8 @@
 least squares), chooses between a first-order-plus-dead-time (FOPDT) and an
 integrating model, attaches 95 % intervals and judges the test. It never raises for
 bad data: a test that cannot give a model comes back ``rejected`` with flags.
-The estimators live in :mod:`mapper.estimators`, the uncertainty in
-:mod:`mapper.uncertainty`, the checks in :mod:`mapper.quality`.
+The estimators live in :mod:`mapper.identification.estimators`, the uncertainty in
+:mod:`mapper.identification.uncertainty`, the checks in :mod:`mapper.identification.quality`.
 """
 
 from __future__ import annotations
@@ -15,24 +15,31 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from . import estimators as est
-from .errors import DataError, IdentificationError
-from .models import simulate_fopdt, simulate_integrating
-from .quality import FLAG_TEXT, StepInfo, median, assess, find_step, grade, noise_sd, standard_deviation
-from .uncertainty import sandwich_covariance, t_quantile
+from mapper.constants import MIN_AFTER_STEP_SAMPLES, MIN_BASELINE_SAMPLES, MIN_FIT_SAMPLES
+from mapper.errors import DataError, IdentificationError
+from mapper.identification import estimators as est
+from mapper.identification.models import simulate_fopdt, simulate_integrating
+from mapper.identification.quality import (
+    FLAG_TEXT,
+    StepInfo,
+    assess,
+    find_step,
+    grade,
+    median,
+    noise_sd,
+    standard_deviation,
+)
+from mapper.identification.uncertainty import sandwich_covariance, t_quantile
 
-__all__ = ["METHODS", "FitResult", "identify", "find_step", "StepInfo"]
+__all__ = ["ESTIMATORS", "FitResult", "identify", "find_step", "StepInfo"]
 
-METHODS = ("least_squares", "graphical", "smith", "sundaresan", "area")
+ESTIMATORS = ("least_squares", "graphical", "smith", "sundaresan", "area")
 _POINT_METHODS = {
     "graphical": est.graphical,
     "smith": est.smith,
     "sundaresan": est.sundaresan,
     "area": est.area,
 }
-MIN_SAMPLES = 10
-MIN_BASELINE_SAMPLES = 3
-MIN_AFTER_SAMPLES = 5
 INTEGRATING_RSS_RATIO = 1.1  # integrating model kept if it fits within 10 % of the FOPDT
 
 
@@ -139,7 +146,7 @@ def identify(
     u, y : ndarray
         Input (the stepped variable) and output (the response).
     method : str, default "least_squares"
-        One of :data:`METHODS`: ``"least_squares"`` (output error on the measured
+        One of :data:`ESTIMATORS`: ``"least_squares"`` (output error on the measured
         input, with 95 % intervals), ``"graphical"`` (63.2 %), ``"smith"``,
         ``"sundaresan"`` or ``"area"``.
     input_range, output_range : (float, float), optional
@@ -163,12 +170,12 @@ def identify(
     change by the end of the record and an integrating model fits as well (within
     10 % residual sum of squares): the output ramps and never settles. Intervals come
     from the Jacobian at the optimum, widened for AR(1) residuals
-    (:func:`mapper.uncertainty.sandwich_covariance`); the time-constant interval is
+    (:func:`mapper.identification.uncertainty.sandwich_covariance`); the time-constant interval is
     taken on a log scale so it stays positive.
     """
-    if method not in METHODS:
+    if method not in ESTIMATORS:
         raise IdentificationError(
-            f"unknown identification method {method!r}", hint="choose one of " + ", ".join(METHODS)
+            f"unknown identification method {method!r}", hint="choose one of " + ", ".join(ESTIMATORS)
         )
     t, u, y = (np.asarray(a, dtype=float) for a in (t, u, y))
     if t.ndim != 1 or t.shape != u.shape or t.shape != y.shape:
@@ -183,7 +190,7 @@ def identify(
         "input_range": list(input_range) if input_range is not None else None,
         "output_range": list(output_range) if output_range is not None else None,
     }
-    if t.size < MIN_SAMPLES:
+    if t.size < MIN_FIT_SAMPLES:
         return _rejected(method, ["too_few_samples"], settings)
     if not (np.all(np.isfinite(t)) and np.all(np.isfinite(u)) and np.all(np.isfinite(y))):
         return _rejected(method, ["non_finite_samples"], settings)
@@ -200,7 +207,7 @@ def identify(
         return _rejected(method, flags + ["no_input_step"], settings, step, y)
     if step.index < MIN_BASELINE_SAMPLES:
         return _rejected(method, flags + ["no_baseline_before_step"], settings, step, y)
-    if t.size - step.index < MIN_AFTER_SAMPLES:
+    if t.size - step.index < MIN_AFTER_STEP_SAMPLES:
         return _rejected(method, flags + ["step_at_end"], settings, step, y)
     if np.ptp(y) == 0.0:
         return _rejected(method, flags + ["no_response"], settings, step, y)

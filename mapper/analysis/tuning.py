@@ -4,7 +4,7 @@ This module owns the controller side of the job: published PI rules for first-or
 (FOPDT) and integrating-plus-dead-time processes, conversion of a controller to the settings an
 engineer types (gain, integral time in seconds and minutes, proportional band), robustness margins
 from the exact frequency response of the loop (dead time as ``exp(-j w theta)``, no Padé
-approximation; computed in :mod:`mapper.margins` and re-exported here), and the slowdown measure
+approximation; computed in :mod:`mapper.analysis.margins` and re-exported here), and the slowdown measure
 used by the verdict.
 
 Conventions: time in seconds, process gain in output units per input unit (integrating gain in
@@ -17,9 +17,8 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 
+from mapper.analysis.margins import check_process
 from mapper.errors import DataError
-from mapper.margins import (MODELS, LoopMargins, check_process, frequency_margins,  # noqa: F401
-                            loop_margins, loop_response, quick_peak_sensitivity, search_grid)
 
 TUNING_RULES = ("simc", "lambda")
 

@@ -22,11 +22,11 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .campaign import Campaign, TestEntry, load_campaign
-from .errors import CampaignFileError, DataError, MapperError
-# find_moves and uniform_grid are re-exported for callers of the import API
-from .segment import MIN_SAMPLES, Signals, find_moves, split_signals, uniform_grid  # noqa: F401
-from .store import ScannedFile, Store, scan_file, scan_first_text, scan_many
+from mapper.constants import MIN_FILE_SAMPLES
+from mapper.errors import CampaignFileError, DataError, MapperError
+from mapper.store.campaign import Campaign, TestEntry, load_campaign
+from mapper.store.database import ScannedFile, Store, scan_file, scan_first_text, scan_many
+from mapper.store.segment import Signals, split_signals
 
 MAX_MAGNITUDE = 1e12
 _NUMERIC_TYPES = ("DOUBLE", "FLOAT", "BIGINT", "INTEGER", "SMALLINT", "TINYINT", "HUGEINT",
@@ -264,8 +264,8 @@ def read_signals(path: Path, time_column: str, input_column: str, output_column:
         match = _ZONE.search(written or "")
         zone = match.group(0) if match else "UTC"
     _check_time(path, time_column, t, offset)
-    if n < MIN_SAMPLES:
-        raise DataError(f"{path}: only {n} samples; at least {MIN_SAMPLES} are needed to hold a step",
+    if n < MIN_FILE_SAMPLES:
+        raise DataError(f"{path}: only {n} samples; at least {MIN_FILE_SAMPLES} are needed to hold a step",
                         hint="log faster or longer around the step")
     if np.ptp(u) == 0:
         raise DataError(f"{path}: the input '{input_column}' never moves (constant {u[0]:g})",

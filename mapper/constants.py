@@ -1,0 +1,47 @@
+"""Thresholds and constants shared across layers, each with its source.
+
+One home per rule: a limit used in more than one module lives here, named for what it
+limits. Rules of thumb of the trade are marked "common practice"; they are constants so a
+site can see and argue with them.
+"""
+
+from __future__ import annotations
+
+__all__ = [
+    "Z95",
+    "MIN_FILE_SAMPLES",
+    "MIN_FIT_SAMPLES",
+    "MIN_BASELINE_SAMPLES",
+    "MIN_AFTER_STEP_SAMPLES",
+    "MIN_RESPONSE_SAMPLES",
+    "SETTLE_TIME_CONSTANTS",
+    "MIN_RESPONSE_NOISE_BANDS",
+    "NOISE_BAND_SDS",
+    "MIN_SAMPLES_PER_TIME_CONSTANT",
+    "DRIFT_FRACTION",
+    "MOVE_FRACTION",
+    "QUANTUM_LEVELS",
+    "CLIP_SPAN_FRACTION",
+    "MISFIT_FRACTION",
+]
+
+# two-sided 95 % point of the standard normal (any statistics table; scipy.stats.norm.ppf(0.975))
+Z95 = 1.959963984540054
+
+# --- sample counts ------------------------------------------------------------------------
+MIN_FILE_SAMPLES = 20  # a data file or test window shorter than this cannot hold a step test
+MIN_FIT_SAMPLES = 10  # fewer samples than this in a window: no model is identified
+MIN_BASELINE_SAMPLES = 3  # samples before the step needed to know where the output started
+MIN_AFTER_STEP_SAMPLES = 5  # samples after the step needed to see a response at all
+MIN_RESPONSE_SAMPLES = 3  # the fitted response must start at least this many samples before the end
+
+# --- rules of thumb for judging a test (common practice) ------------------------------------
+SETTLE_TIME_CONSTANTS = 4.0  # 98 % of the change is reached after dead time + 4 tau
+MIN_RESPONSE_NOISE_BANDS = 5.0  # step response should be several noise bands (4 sd) wide
+NOISE_BAND_SDS = 4.0  # peak-to-peak noise band taken as +-2 sd
+MIN_SAMPLES_PER_TIME_CONSTANT = 10.0
+DRIFT_FRACTION = 0.10  # pre-step drift, carried over the test, against the response
+MOVE_FRACTION = 0.10  # input moves smaller than this share of the main step are ignored
+QUANTUM_LEVELS = 50  # fewer output levels than this across the response: quantised
+CLIP_SPAN_FRACTION = 0.005  # within 0.5 % of an instrument limit counts as at the limit
+MISFIT_FRACTION = 0.10  # systematic residual beyond 10 % of the response: poor fit
