@@ -1,6 +1,7 @@
 """Monte Carlo study of identification intervals under four noise types, with timing.
 
-Not a unit test: run by hand (``python scripts/interval_study.py [runs]``) to measure the
+Not a unit test: run by hand (``python scripts/interval_study.py [runs] [kinds] [--before]``)
+to measure the
 coverage of the 95 % intervals, their median width as a multiple of the Cramér-Rao width
 (Fisher information with the true noise covariance; Cramér 1946, Rao 1945) and the
 per-test fit time. Seeded; the simulated plants are invented.
@@ -53,8 +54,9 @@ def example(kind: str, rng: np.random.Generator, index: int):
         if kind == "ar1_slow":
             a = math.exp(-1.0 / 300.0)
             sd_slow = 0.03 * response
-            slow = lfilter([1.0], [1.0, -a], rng.normal(0.0, sd_slow * math.sqrt(1 - a**2), n),
-                           zi=[a * rng.normal(0.0, sd_slow)])[0]
+            slow = lfilter(
+                [1.0], [1.0, -a], rng.normal(0.0, sd_slow * math.sqrt(1 - a**2), n), zi=[a * rng.normal(0.0, sd_slow)]
+            )[0]
             lag = np.abs(np.subtract.outer(np.arange(n), np.arange(n)))
             cov = sd_slow**2 * a**lag + white**2 * np.eye(n)
         else:
@@ -70,8 +72,7 @@ def example(kind: str, rng: np.random.Generator, index: int):
 def cramer_rao(t, u, truth, cov) -> dict[str, float]:
     """Cramér-Rao sd with the offset free and the true (dense) noise covariance."""
     period = float(t[1] - t[0])
-    S = fopdt_sensitivities(u, period, truth["gain"], truth["time_constant"], truth["dead_time"],
-                            u0=float(u[0]))
+    S = fopdt_sensitivities(u, period, truth["gain"], truth["time_constant"], truth["dead_time"], u0=float(u[0]))
     J = np.column_stack([np.ones_like(t), S])
     info = J.T @ np.linalg.solve(cov, J)
     sd = np.sqrt(np.diag(np.linalg.inv(info)))[1:]
@@ -89,9 +90,9 @@ def study(kind: str, runs: int, seed: int = 2026) -> dict:
         t, u, y, truth, cov = example(kind, rng, i)
         if i == 0 or kind in ("ar1_slow", "random_walk"):
             crb = cramer_rao(t, u, truth, cov)
-        start = time.perf_counter()
+        start = time.process_time()
         r = identify(t, u, y)
-        seconds.append(time.perf_counter() - start)
+        seconds.append(time.process_time() - start)
         flagged += r.quality != "good"
         for k in PARAMETERS:
             lo, hi = getattr(r, k + "_lo"), getattr(r, k + "_hi")
@@ -110,16 +111,26 @@ def study(kind: str, runs: int, seed: int = 2026) -> dict:
 
 
 def main() -> None:
-    runs = int(sys.argv[1]) if len(sys.argv) > 1 else 200
-    kinds = sys.argv[2].split(",") if len(sys.argv) > 2 else ["white", "ar1_fast", "ar1_slow", "random_walk"]
-    print(f"{runs} runs per noise type")
-    print("noise        | coverage K / tau / theta | width/CRB K / tau / theta | spread/CRB K / tau | not good | fit ms")
+    args = [a for a in sys.argv[1:] if a != "--before"]
+    if "--before" in sys.argv:
+        from mapper.identification import identify as module
+        from mapper.identification.uncertainty import sandwich_covariance_result
+
+        module.disturbance_covariance = sandwich_covariance_result  # the AR(1) sandwich
+    runs = int(args[0]) if args else 200
+    kinds = args[1].split(",") if len(args) > 1 else ["white", "ar1_fast", "ar1_slow", "random_walk"]
+    print(f"{runs} runs per noise type" + (" (previous rule)" if "--before" in sys.argv else ""))
+    print(
+        "noise        | coverage K / tau / theta | width/CRB K / tau / theta | spread/CRB K / tau | not good | fit ms"
+    )
     for kind in kinds:
         s = study(kind, runs)
         c, w, sp = s["coverage"], s["width_over_crb"], s["spread_over_crb"]
-        print(f"{kind:12s} | {c['gain']:.2f} / {c['time_constant']:.2f} / {c['dead_time']:.2f}"
-              f" | {w['gain']:.2f} / {w['time_constant']:.2f} / {w['dead_time']:.2f}"
-              f" | {sp['gain']:.2f} / {sp['time_constant']:.2f} | {s['not_good']:.2f} | {s['median_fit_ms']:.2f}")
+        print(
+            f"{kind:12s} | {c['gain']:.2f} / {c['time_constant']:.2f} / {c['dead_time']:.2f}"
+            f" | {w['gain']:.2f} / {w['time_constant']:.2f} / {w['dead_time']:.2f}"
+            f" | {sp['gain']:.2f} / {sp['time_constant']:.2f} | {s['not_good']:.2f} | {s['median_fit_ms']:.2f}"
+        )
 
 
 if __name__ == "__main__":
