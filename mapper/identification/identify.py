@@ -100,15 +100,17 @@ class FitResult:
         """The model's output on samples ``t, u`` (NaN everywhere when there is no model)."""
         t = np.asarray(t, dtype=float)
         u = np.asarray(u, dtype=float)
-        ok = self.gain is not None and self.dead_time is not None and self.offset is not None
-        if self.model == "none" or not ok or t.size < 2:
+        gain, time_constant, dead_time, offset = self.gain, self.time_constant, self.dead_time, self.offset
+        if self.model == "none" or gain is None or dead_time is None or offset is None or t.size < 2:
             return np.full(t.shape, np.nan)
         period = float(np.median(np.diff(t)))
         u0 = self.input_before if self.input_before is not None else float(u[0])
         if self.model == "integrating":
-            return simulate_integrating(u, period, self.gain, self.dead_time, u0=u0, y0=self.offset)
+            return simulate_integrating(u, period, gain, dead_time, u0=u0, y0=offset)
+        if time_constant is None:
+            return np.full(t.shape, np.nan)
         return simulate_fopdt(
-            u, period, self.gain, self.time_constant, self.dead_time, u0=u0, y0=self.offset
+            u, period, gain, time_constant, dead_time, u0=u0, y0=offset
         )
 
 
@@ -314,8 +316,8 @@ def _still_ramping(shape) -> bool:
 def _least_squares(period, v, y, step: StepInfo, start: est.Estimate):
     """FOPDT by least squares; the integrating model when the output never settles."""
     # a point-method start assumes one clean move; otherwise search a grid
-    single = step.n_moves == 1 and start.time_constant
-    guess = (start.time_constant, start.dead_time) if single else None
+    single = step.n_moves == 1 and start.time_constant is not None and start.time_constant > 0
+    guess = (start.time_constant, start.dead_time) if single and start.time_constant is not None else None
     fopdt = est.least_squares_fopdt(period, v, y, step.index, guess)
     if fopdt is None:
         return None
@@ -329,14 +331,15 @@ def _least_squares(period, v, y, step: StepInfo, start: est.Estimate):
 
 
 def _intervals(e: est.Estimate, cov, z) -> dict[str, tuple[float | None, float | None]]:
-    none = (None, None)
-    out = {"gain": none, "time_constant": none, "dead_time": none}
+    none: tuple[float | None, float | None] = (None, None)
+    out: dict[str, tuple[float | None, float | None]] = {"gain": none, "time_constant": none, "dead_time": none}
     if cov is None:
         return out
     sd = np.sqrt(np.clip(np.diag(cov), 0.0, np.inf))
     out["gain"] = (_finite(e.gain - z * sd[1]), _finite(e.gain + z * sd[1]))
     k = 2
     if e.model == "fopdt":
+        assert e.time_constant is not None  # an FOPDT estimate always carries one
         rel = sd[2] / e.time_constant  # log-scale interval stays positive
         if np.isfinite(rel) and rel < 50:
             out["time_constant"] = (

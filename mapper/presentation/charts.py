@@ -29,6 +29,7 @@ from typing import Any
 
 import altair as alt
 import numpy as np
+import numpy.typing as npt
 import pandas as pd
 
 #: Colour of each role, shared by every chart (hex). Our own assignment.
@@ -188,7 +189,7 @@ def unpack_test(test: Any) -> tuple[dict, np.ndarray, np.ndarray, np.ndarray, An
     items = list(test)
     row = dict(items[0])
     t, u, y = (np.asarray(items[k], float) for k in (1, 2, 3))
-    fitted = items[4] if len(items) > 4 else row.get("fitted")
+    fitted: Any = items[4] if len(items) > 4 else row.get("fitted")
     step = items[5] if len(items) > 5 else row.get("step_time")
     if hasattr(fitted, "fitted"):  # an identification result: ask it for its output
         step = getattr(fitted, "step_time", None) if step is None else step
@@ -224,7 +225,8 @@ def _map_points(params: pd.DataFrame) -> list[dict]:
             g_lo, g_hi = _number(rec.get("gain_lo")), _number(rec.get("gain_hi"))
             t_lo, t_hi = _number(rec.get("time_constant_lo")), _number(rec.get("time_constant_hi"))
             lo = hi = None
-            if None not in (g_lo, g_hi, t_lo, t_hi) and t_lo > 0 and t_hi > 0:
+            if g_lo is not None and g_hi is not None and t_lo is not None and t_hi is not None \
+                    and t_lo > 0 and t_hi > 0:
                 ends = [g_lo / t_lo, g_lo / t_hi, g_hi / t_lo, g_hi / t_hi]
                 lo, hi = _number(min(ends)), _number(max(ends))
             rows.append({**base, "parameter": "gain_over_time_constant", "value": _number(gain / tau),
@@ -444,8 +446,8 @@ class _StepParts:
     unit_out: str
 
 
-def _step_parts(row: Mapping[str, Any], t: Sequence[float], u: Sequence[float],
-                y: Sequence[float], fitted: Sequence[float] | None, step_time: float | None,
+def _step_parts(row: Mapping[str, Any], t: npt.ArrayLike, u: npt.ArrayLike,
+                y: npt.ArrayLike, fitted: npt.ArrayLike | None, step_time: float | None,
                 units: Mapping[str, str] | None, points: int) -> _StepParts:
     unit_in, unit_out = _units(units)
     t = np.asarray(t, dtype=float)
@@ -473,7 +475,7 @@ def _step_parts(row: Mapping[str, Any], t: Sequence[float], u: Sequence[float],
         title=f"{_text(row.get('test_id'))}: level {_fmt(row.get('level'))} {unit_out}, "
               f"{_text(row.get('direction'))} step",
         subtitle=f"quality: {quality}" + (f"; flags: {', '.join(flags)}" if flags else ""),
-        marks=_model_marks(row, t, fit, step) if model_line else None,
+        marks=_model_marks(row, t, fit, step) if model_line and fit is not None else None,
         step=step, residuals=fit is not None, model_line=model_line,
         unit_in=unit_in, unit_out=unit_out)
 
@@ -620,7 +622,7 @@ def _model_marks(row: Mapping[str, Any], t: np.ndarray, fit: np.ndarray,
                  step: float | None) -> dict | None:
     gain, tau, theta = (_number(row.get(k)) for k in ("gain", "time_constant", "dead_time"))
     input_step = _number(row.get("input_step"))
-    if step is None or None in (gain, tau, theta, input_step):
+    if step is None or gain is None or tau is None or theta is None or input_step is None:
         return None
     before = fit[(t <= step) & np.isfinite(fit)]
     y0 = float(before[-1]) if len(before) else float(np.nanmean(fit[:1]))
@@ -666,8 +668,8 @@ def margins_chart(verdict: Mapping[str, Any], *, units: Mapping[str, str] | None
     rule = lim.mark_rule(color=PALETTE["mark"], strokeDash=[6, 3], strokeWidth=1.5).encode(y=alt.Y("limit:Q"))
     label = lim.mark_text(align="left", dx=4, dy=-6, color=PALETTE["mark"]).encode(
         y=alt.Y("limit:Q"), x=alt.XValue(0), text=alt.Text("label:N"))
-    return alt.layer(lines, rule, label).properties(
-        width=width, height=height, title="Robustness across the range (Ms at or under the limit)")
+    return alt.LayerChart(layer=[lines, rule, label], width=width, height=height,
+                          title="Robustness across the range (Ms at or under the limit)")
 
 
 def schedule_rows(verdict: Mapping[str, Any]) -> list[dict]:
@@ -726,8 +728,8 @@ def schedule_chart(verdict: Mapping[str, Any], *, units: Mapping[str, str] | Non
         layers.append(alt.Chart({"values": [{"kc": single, "label": "single controller"}]})
                       .mark_text(align="left", dx=4, dy=-6, color=PALETTE["single"]).encode(
                           y=alt.Y("kc:Q"), x=alt.XValue(0), text=alt.Text("label:N")))
-    return alt.layer(*layers).properties(width=width, height=height,
-                                         title="Gain schedule: controller gain against level")
+    return alt.LayerChart(layer=layers, width=width, height=height,
+                          title="Gain schedule: controller gain against level")
 
 
 #: Vega-Lite version the specs are written for (e.g. "v6.4.1"); report.py bundles the

@@ -163,7 +163,8 @@ def _vl_version() -> str | None:
 @functools.lru_cache(maxsize=2)
 def javascript_bundle() -> str:
     """Vega, Vega-Lite and Vega-Embed as one script (cached; a few seconds the first time)."""
-    bundle = vl_convert.javascript_bundle(vl_version=_vl_version())
+    # the stub marks ``snippet`` required; at run time it defaults to None (vl-convert 1.9)
+    bundle = vl_convert.javascript_bundle(vl_version=_vl_version())  # type: ignore[call-arg]
     # a literal "</script" would end the inline element early
     return re.sub(r"</(script)", r"<\\/\1", bundle, flags=re.IGNORECASE)
 
@@ -371,9 +372,9 @@ def test_sort_key(row: Mapping[str, Any]) -> tuple:
 
     Callers that stream tests into :func:`write_report` sort their params rows with this.
     """
-    level = row.get("level")
+    raw: Any = row.get("level")  # None and text fall to the except below
     try:
-        level = float(level)
+        level = float(raw)
     except (TypeError, ValueError):
         level = math.inf
     return (_QUALITY_ORDER.get(str(row.get("quality")), 3), level if math.isfinite(level) else math.inf,
