@@ -13,6 +13,7 @@ import numpy as np
 import pytest
 from scipy.signal import lfilter
 
+from mapper.identification.flags import FLAGS
 from mapper.identification.identify import identify
 from mapper.identification.models import simulate_fopdt
 from mapper.identification.uncertainty import _ar1_times, _q_times, disturbance_covariance
@@ -52,6 +53,8 @@ def test_intervals_cover_the_truth_under_slow_wander(kind, seed):
             inside[key] += getattr(r, key + "_lo") <= true <= getattr(r, key + "_hi")
     assert inside["gain"] >= 0.85 * len(results), inside
     assert inside["time_constant"] >= 0.85 * len(results), inside
+    # a wander of 3 % is not a load change (issue 14: disturbed tests flagged, not every test)
+    assert not any("load_change" in r.flags for r in results)
 
 
 def test_tridiagonal_form_matches_the_inverse_ar1_correlation_matrix():
@@ -91,3 +94,32 @@ def test_wander_is_found_and_widens_the_gain_interval():
     white_only = identify(t, u, simulate_fopdt(u, PERIOD, GAIN, TIME_CONSTANT, DEAD_TIME) + 20.0
                           + np.random.default_rng(5).normal(0.0, 0.01 * RESPONSE, SAMPLES))  # fmt: skip
     assert (r.gain_hi - r.gain_lo) > 2.0 * (white_only.gain_hi - white_only.gain_lo)
+
+
+def _pump_start(load: float, seed: int = 3):
+    """Invented drum-level-like test: K=0.109, tau=318 s, theta=30 s, T=5 s, input step 3.2 at
+    300 s (response 0.35), and a load step of ``load`` entering through the same lag at 900 s,
+    mid-response."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(0.0, 3000.0, 5.0)
+    u = 40.0 + 3.2 * (t >= 300.0)
+    disturbance = load * (t >= 900.0)
+    y = (50.0 + simulate_fopdt(u, 5.0, 0.109, 318.0, 30.0) + simulate_fopdt(disturbance, 5.0, 1.0, 318.0, 0.0)
+         + rng.normal(0.0, 0.005, t.size))  # fmt: skip
+    return t, u, y
+
+
+def test_load_step_during_the_response_is_flagged():
+    # Issue 14: a test hit by a load step mid-response fitted gain and time constant far from
+    # the truth with only `not_settled`; it must be flagged and graded suspect.
+    clean = identify(*_pump_start(0.0))
+    assert clean.quality == "good" and clean.gain == pytest.approx(0.109, rel=0.02), clean.flags
+    hit = identify(*_pump_start(0.2))  # 57 % of the response
+    assert hit.gain > 0.15  # the fit is dragged (truth 0.109), which is why the flag matters
+    assert "load_change" in hit.flags and hit.quality == "suspect"
+    assert any("baseline moved by about" in note for note in hit.notes)
+
+
+def test_disturbance_flags_are_registered_with_text_and_effect():
+    for name in ("load_change", "slow_disturbance"):
+        assert FLAGS[name].effect == "suspect" and FLAGS[name].text.endswith(".")

@@ -31,6 +31,7 @@ from mapper.identification.quality import (
     noise_sd,
     standard_deviation,
 )
+from mapper.identification.disturbance import disturbance_flags
 from mapper.identification.uncertainty import disturbance_covariance
 
 __all__ = ["ESTIMATORS", "FitResult", "identify", "find_step", "StepInfo"]
@@ -320,6 +321,7 @@ def _identify_step(t, u, y, step, method, flags, settings, input_range, output_r
     fit = None
     used = method
     cov = None
+    disturbance = None
     phi = None
     quantile = None
     if method == "least_squares" or _still_ramping(shape):
@@ -377,6 +379,14 @@ def _identify_step(t, u, y, step, method, flags, settings, input_range, output_r
     if e.at_bound and e.model == "fopdt":
         flags.append("time_constant_at_bound")
     flags = list(dict.fromkeys(flags))
+    if disturbance is not None and fit is not None:  # unexplained load changes and wander
+        first = step.index + int(e.dead_time / period) + 2 if np.isfinite(e.dead_time) else step.index
+        found, said = disturbance_flags(
+            fit.residuals, fit.jacobian, first=first, period=period, time_constant=e.time_constant,
+            response=response, noise=disturbance, fast_noise_sd=noise_sd(fit.residuals),
+        )  # fmt: skip
+        flags += [f for f in found if f not in flags]
+        notes += said
     notes = [flag_text(f) for f in (*import_flags, *flags)] + notes
     return FitResult(
         model=e.model, method=used,
