@@ -69,6 +69,13 @@ FIT_VALUE_COLUMNS: tuple[Column, ...] = (
     Column("step_time", "number", "time of that move (s from the window start)"),
     Column("y_before", "number", "output before the move (output units)"),
     Column("y_after", "number", "settled output after the move (output units)"),
+    Column("offset", "number", "model output before the move (output units)"),
+    Column("input_before", "number", "input held before the move (input units)"),
+    Column("start_state", "number", "free response still decaying at the window's first sample "
+                                    "(output units); null when the plant was taken at rest"),
+    Column("residual_sd", "number", "standard deviation of the residuals (output units)"),
+    Column("autocorrelation", "number", "lag-one autocorrelation of the residuals"),
+    Column("model_evidence", "text", "which evidence decided between the model forms"),
 )
 FIT_VALUE_NAMES: tuple[str, ...] = tuple(c.name for c in FIT_VALUE_COLUMNS)
 
