@@ -54,9 +54,14 @@ _VIEW_EXPRESSIONS = {
 }
 
 
+def _quoted(name: str) -> str:
+    """A registered column name as an SQL identifier (some, like ``offset``, are keywords)."""
+    return f'"{name}"'
+
+
 def _fits_table_sql() -> str:
     """CREATE TABLE for ``fits``, its value columns generated from the registry."""
-    registered = [f"{c.name} {_SQL_TYPES[c.kind]}" for c in (*FIT_VALUE_COLUMNS, *FIT_LIST_COLUMNS)]
+    registered = [f"{_quoted(c.name)} {_SQL_TYPES[c.kind]}" for c in (*FIT_VALUE_COLUMNS, *FIT_LIST_COLUMNS)]
     return ("CREATE TABLE IF NOT EXISTS fits (test_id INTEGER PRIMARY KEY, " + ", ".join(registered)
             + ", settings VARCHAR, tool_version VARCHAR, fitted_at TIMESTAMP DEFAULT current_timestamp)")
 
@@ -67,9 +72,9 @@ def _view_sql() -> str:
     selected = []
     for name in TEST_PARAMS_NAMES:
         if name in _VIEW_EXPRESSIONS:
-            selected.append(f"{_VIEW_EXPRESSIONS[name]} AS {name}")
+            selected.append(f"{_VIEW_EXPRESSIONS[name]} AS {_quoted(name)}")
         elif name in fit_names:
-            selected.append(f"f.{name}")
+            selected.append(f"f.{_quoted(name)}")
         else:
             raise RuntimeError(f"view column {name} has no source")  # a registry edit missed here
     return ("CREATE OR REPLACE VIEW test_params AS SELECT " + ", ".join(selected)
@@ -220,7 +225,7 @@ class Store:
             "SELECT column_name FROM information_schema.columns WHERE table_name = 'fits'").fetchall()}
         missing = [c for c in (*FIT_VALUE_COLUMNS, *FIT_LIST_COLUMNS) if c.name not in present]
         for spec in missing:
-            column_sql = f"{spec.name} {_SQL_TYPES[spec.kind]}"  # registry name and type, no user text
+            column_sql = f"{_quoted(spec.name)} {_SQL_TYPES[spec.kind]}"  # registry name and type, no user text
             self.connection.execute("ALTER TABLE fits ADD COLUMN " + column_sql)
 
     def _check_existing(self, wait: float) -> None:
@@ -410,7 +415,7 @@ class Store:
         columns["settings"] = pa.array([json.dumps(r.get("settings") or {}, default=str) for r in rows])
         columns["tool_version"] = pa.array([__version__] * len(rows))
         table = pa.table(columns)
-        names = ", ".join(table.column_names)  # constant column names, no user text
+        names = ", ".join(map(_quoted, table.column_names))  # registry names, no user text
         with self.transaction() as con:
             con.register("incoming_fits", table)
             try:
