@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -162,7 +163,7 @@ class OperatingMap:
                 f"{format_level(self.level_min)} to {format_level(self.level_max)}",
                 hint="ask inside the tested range, or allow extrapolation (at your own risk)",
             )
-        out = {"level": level}
+        out: dict[str, Any] = {"level": level}
         for name in ("gain", "time_constant", "dead_time"):
             value, lo, hi = self.value(name, level)
             if value is not None and name != "gain" and math.isfinite(lo):
@@ -171,7 +172,8 @@ class OperatingMap:
                 v if v is None or math.isfinite(v) else None for v in (value, lo, hi))
         if outside:
             out["warning"] = (f"extrapolated: {self.against} {format_level(level)} is outside the tested range "
-                              f"{format_level(self.level_min)} to {format_level(self.level_max)}; the trend shape is unverified there")
+                              f"{format_level(self.level_min)} to {format_level(self.level_max)}; "
+                              f"the trend shape is unverified there")
         return out
 
     def summary(self) -> list[dict]:

@@ -491,15 +491,8 @@ class Store:
         return {int(r[0]): float(r[1]) for r in rows if r[1] is not None}
 
     def counts(self) -> dict[str, int]:
-        con = self.connection
-        statements = {
-            "campaigns": "SELECT count(*) FROM campaigns",
-            "tests": "SELECT count(*) FROM tests",
-            "samples": "SELECT count(*) FROM samples",
-            "fits": "SELECT count(*) FROM fits",
-        }
-        counted = {}
-        for name, statement in statements.items():
-            row = con.execute(statement).fetchone()
-            counted[name] = int(row[0]) if row else 0
-        return counted
+        row = self.connection.execute(
+            "SELECT (SELECT count(*) FROM campaigns), (SELECT count(*) FROM tests), "
+            "(SELECT count(*) FROM samples), (SELECT count(*) FROM fits)").fetchone()
+        assert row is not None  # an aggregate query always returns one row
+        return dict(zip(("campaigns", "tests", "samples", "fits"), map(int, row)))

@@ -29,7 +29,7 @@ class ScannedFile:
     path: Path
     columns: tuple[str, ...]
     types: dict[str, str]
-    values: dict[str, Any]  # numpy arrays, masked where a cell is null
+    values: dict[str, Any]  # numpy arrays (masked where null), or pandas Categorical for ENUM columns
 
     def sniff_delimiter(self) -> str | None:
         """The CSV delimiter DuckDB's sniffer finds (None for Parquet).
