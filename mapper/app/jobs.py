@@ -5,7 +5,6 @@ command line stays thin and notebooks can call the same functions.
 
 from __future__ import annotations
 
-import json
 import shutil
 import time
 from dataclasses import dataclass
@@ -18,7 +17,7 @@ from mapper.analysis.compare import compare_campaigns, compare_directions, compa
 from mapper.analysis.opmap import OperatingMap, build_map
 from mapper.analysis.verdict import Verdict, decide
 from mapper.errors import MapperError, NotFoundError
-from mapper.identification.models import simulate_fopdt, simulate_integrating
+from mapper.identification.identify import FitResult
 from mapper.store.database import Store
 
 SAFETY_NOTE = ("Step tests and new tuning can hurt people and equipment: agree limits with "
@@ -133,21 +132,10 @@ def compare_two(store_path, first: str, second: str) -> list[dict]:
 
 
 def _fitted_curve(fit: dict | None, t: np.ndarray, u: np.ndarray) -> np.ndarray | None:
-    if not fit or fit.get("model") not in ("fopdt", "integrating"):
+    if not fit or fit.get("model") not in ("fopdt", "integrating") or len(t) < 2:
         return None
-    settings = json.loads(fit.get("settings") or "{}")
-    offset = settings.get("offset", fit.get("y_before"))
-    u0 = settings.get("input_before", float(u[0]))
-    gain, dead_time = _finite(fit.get("gain")), _finite(fit.get("dead_time"))
-    if offset is None or gain is None or dead_time is None or len(t) < 2:
-        return None
-    period = float(np.median(np.diff(t)))
-    if fit["model"] == "integrating":
-        return simulate_integrating(u, period, gain, dead_time, u0=u0, y0=offset)
-    time_constant = _finite(fit.get("time_constant"))
-    if time_constant is None:
-        return None
-    return simulate_fopdt(u, period, gain, time_constant, dead_time, u0=u0, y0=offset)
+    curve = FitResult.from_row(fit).fitted(t, u)
+    return curve if np.isfinite(curve).any() else None
 
 
 def _iter_tests(store: Store, params: pd.DataFrame, *, batch: int = 32):
