@@ -28,13 +28,10 @@ AICC_SUPPORT = 2.0  # shapes within this AICc of the best count as equally suppo
 LACK_OF_FIT_LEVEL = 0.05  # a shape whose lack-of-fit p-value is below this misses its tests
 OUTLIER_LEVEL = 0.05  # family-wise level of the outlier test over all tests of a trend
 OUTLIER_MAX_FRACTION = 0.2  # never leave out more than this share of the tests
+MIN_LEVELS_TO_JUDGE = 3  # fewer levels cannot show whether a parameter stays or moves (see _detectable_ratio)
 OUTLIER_SCREEN = 20  # at most this many tests (largest residuals first) are refitted without themselves
 
-FLAG_TEXT = {
-    "outlier_against_trend": ("disagrees with the tests at neighbouring levels beyond its uncertainty "
-                              "(an outlier against the trend); left out of the map"),
-    "outlier_against_trend_kept": ("disagrees with the trend beyond its uncertainty but is the only test "
-                                   "at an end of the range, where it cannot be told from curvature; kept"),
+TREND_FLAG_TEXT = {
     "map_outside_tested_interval": ("the map at a tested level lies outside the pooled interval of that "
                                     "level's own tests"),
     "shape_misfit": "no shape offered passes the lack-of-fit test; the best of them is used",
@@ -43,7 +40,7 @@ FLAG_TEXT = {
     "some_intervals_missing": "some tests have no interval; the median interval is used for them",
     "no_intervals": "no test has an interval; the scatter between tests sets the band",
     "band_unknown": "no interval and no repeat scatter: the band cannot be given",
-}
+}  # flags of a trend; flags of a test (outlier_against_trend) live in mapper.identification.flags
 
 
 def cluster_levels(x, tolerance: float | None = None) -> np.ndarray:
@@ -212,9 +209,10 @@ def _core_fit(z, y, sigma, labels) -> _Core:
     shapes = candidate_shapes(y, means, y.size)
     pure = {"level": pure_error_scatter(y, sigma, labels)}
     if any(s.space == "log" for s in shapes):
-        pure["log"] = pure_error_scatter(*Shape("log", "log", 0).to_space(y, sigma), labels)
+        log_value, log_sigma = Shape("log", "log", 0).to_space(y, sigma)
+        pure["log"] = pure_error_scatter(log_value, log_sigma, labels)
     fits = [fit_shape(s, z, y, sigma, labels, pure[s.space]) for s in shapes]
-    # Adequate: passes the lack-of-fit test and stays inside every tested level's pooled interval.
+    # Adequate: passes the lack-of-fit test and stays inside the tested levels' pooled intervals.
     adequate = [f for f in fits if (f.lack_of_fit_p is None or f.lack_of_fit_p >= LACK_OF_FIT_LEVEL)
                 and (f.lack_of_fit_p is None or _inside_pooled(f, z, y, sigma, labels))]
     misfit = not adequate
@@ -228,24 +226,21 @@ def _core_fit(z, y, sigma, labels) -> _Core:
     return _Core(chosen, tuple(adequate), tuple(fits), labels, misfit)
 
 
-def _loo_residual(z, y, sigma, labels, i) -> tuple[float, float, float, float]:
-    """Externally studentised residual of test ``i`` against the trend of the others.
+def _predict_without(z, y, sigma, labels, leave_out, i) -> tuple[float, float, bool]:
+    """What the tests not in ``leave_out`` predict at test ``i``: ``(value, sd, saturated)``.
 
-    Returns ``(z_score, expected, expected_sd, criterion)`` where ``criterion`` is the AICc-like
-    misfit of the remaining tests (chi-square plus twice the coefficients) used to choose between
-    candidates.
+    ``sd`` combines test ``i``'s own interval, the scatter between tests and the trend's standard
+    error; ``saturated`` says the chosen shape passes through every level mean (no smoothness to judge
+    a lone test by).
     """
-    keep = np.arange(y.size) != i
+    keep = ~leave_out
     core = _core_fit(z[keep], y[keep], sigma[keep], labels[keep])
     fit = core.chosen
     value, se = fit.predict(np.array([z[i]]))
-    if fit.shape.space == "log":
-        scatter_sd = abs(float(value[0])) * math.sqrt(fit.extra_variance)
-    else:
-        scatter_sd = math.sqrt(fit.extra_variance)
-    sd = math.sqrt(sigma[i] ** 2 + scatter_sd ** 2 + float(se[0]) ** 2)
-    return ((y[i] - float(value[0])) / sd, float(value[0]), sd,
-            fit.chi_square + 2 * fit.shape.n_coefficients)
+    scatter = math.sqrt(fit.extra_variance) * (abs(float(value[0])) if fit.shape.space == "log" else 1.0)
+    sd = math.sqrt(sigma[i] ** 2 + scatter ** 2 + float(se[0]) ** 2)
+    saturated = fit.shape.n_coefficients >= int(_relabel(labels[keep]).max() + 1)
+    return float(value[0]), sd, saturated
 
 
 def _outlier_threshold(n: int, dof: int | None) -> float:
@@ -275,24 +270,37 @@ def _find_outliers(z, y, sigma, all_labels) -> list[Outlier]:
         candidates = np.flatnonzero(rough > 0.5 * threshold)
         if candidates.size > OUTLIER_SCREEN:
             candidates = np.argsort(-rough)[:OUTLIER_SCREEN]
-        flagged = []
-        for i in candidates:
-            score, expected, sd, criterion = _loo_residual(za, ya, sa, labels, int(i))
-            if abs(score) > threshold:
-                flagged.append((criterion, -abs(score), int(i), score, expected, sd))
+        flagged, kept = [], []
+        for candidate in candidates:
+            i = int(candidate)
+            alone = np.arange(active.size) == i
+            expected, sd, saturated = _predict_without(za, ya, sa, labels, alone, i)
+            score = (ya[i] - expected) / sd
+            if abs(score) <= threshold:
+                continue
+            repeats = int(np.sum(labels == labels[i])) > 1
+            if repeats:
+                # Of repeats that disagree, the one farther from what the other levels predict there
+                # is the outlier: its neighbours side with the other repeat.
+                level = labels == labels[i]
+                if labels.max() >= 2:
+                    neighbours, spread, _ = _predict_without(za, ya, sa, labels, level, i)
+                    distance = abs(ya[i] - neighbours) / spread
+                else:
+                    distance = abs(score)
+                flagged.append((distance, i, score, expected, sd))
+            elif not saturated and labels[i] not in (0, labels.max()):
+                flagged.append((abs(score), i, score, expected, sd))
+            elif labels[i] in (0, labels.max()):
+                kept.append((abs(score), i, score, expected, sd))
         if not flagged:
+            for _, i, score, expected, sd in sorted(kept, reverse=True)[:1]:
+                found.append(Outlier(index=int(active[i]), level=float(za[i]), value=float(ya[i]),
+                                     expected=expected, expected_sd=sd, z=float(score), left_out=False))
             break
-        # Of the tests beyond the threshold, leave out the one whose removal leaves the best-fitting
-        # remainder (the trimming criterion of least trimmed squares, Rousseeuw 1984): of two repeats
-        # that disagree, the one the neighbouring levels support stays.
-        _, _, i, score, expected, sd = min(flagged)
-        lone = int(np.sum(labels == labels[i])) == 1
-        at_end = labels[i] in (0, labels.max())
-        left_out = not (lone and at_end)
+        _, i, score, expected, sd = max(flagged)
         found.append(Outlier(index=int(active[i]), level=float(za[i]), value=float(ya[i]),
-                             expected=expected, expected_sd=sd, z=float(score), left_out=left_out))
-        if not left_out:
-            break
+                             expected=expected, expected_sd=sd, z=float(score), left_out=True))
         active = np.delete(active, i)
     return found
 
@@ -304,10 +312,12 @@ def _detectable_ratio(z, y, sigma, labels) -> float:
     -----
     A straight line in the logarithm (in the parameter itself when values change sign) is fitted with
     the pure-error scatter; the upper 95 % bound of its slope, taken over the scaled range -1..1,
-    gives the ratio.
+    gives the ratio. With fewer than ``MIN_LEVELS_TO_JUDGE`` levels the ratio is infinite: a straight
+    line through two levels always fits, so the tests cannot say how the parameter moves between or
+    beyond them.
     """
-    if labels.max() < 1 or y.size < 3:
-        return math.inf
+    if labels.max() < MIN_LEVELS_TO_JUDGE - 1 or y.size < 3:
+        return math.inf  # a line through two levels always fits: nothing says how it moves between or beyond
     one_sign = bool(np.all(y > 0) or np.all(y < 0))
     shape = Shape("log_linear", "log", 1) if one_sign else Shape("linear", "level", 1)
     eta, s = shape.to_space(y, sigma)
@@ -349,11 +359,17 @@ def _pooled(fit: ShapeFit, y, sigma, labels):
 
 
 def _inside_pooled(fit: ShapeFit, z, y, sigma, labels) -> bool:
-    """Whether the fitted shape stays inside every tested level's pooled 95 % interval."""
+    """Whether the fitted shape stays inside every tested level's pooled interval, family-wise 95 %.
+
+    A test of the largest standardised distance over the ``m`` levels (two-sided Bonferroni point
+    at 5 %/m): it catches a shape that misses one level, which the F test of lack of fit, spread over
+    all levels, can pass when repeats are few.
+    """
     mean, se, _ = _pooled(fit, y, sigma, labels)
     at = np.bincount(labels, z) / np.bincount(labels)
     eta = fit.shape.design(at) @ np.asarray(fit.coefficients)
-    return bool(np.all(np.abs(eta - mean) <= Z95 * se * (1 + 1e-9) + 1e-12 * np.abs(mean)))
+    limit = float(-special.ndtri(0.025 / mean.size))
+    return bool(np.all(np.abs(eta - mean) <= limit * se * (1 + 1e-9) + 1e-12 * np.abs(mean)))
 
 
 def _level_checks(trend_value, z, y, sigma, labels, fit: ShapeFit, centre, scale) -> list[dict]:
