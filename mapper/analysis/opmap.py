@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -200,7 +201,7 @@ class OperatingMap:
                 f"{format_level(self.level_min)} to {format_level(self.level_max)}",
                 hint="ask inside the tested range, or allow extrapolation (at your own risk)",
             )
-        out: dict = {"level": level}
+        out: dict[str, Any] = {"level": level}
         for name in ("gain", "time_constant", "dead_time"):
             value, lo, hi = self.value(name, level)
             if value is not None and name != "gain" and math.isfinite(lo):

@@ -37,6 +37,7 @@ from mapper.constants import (
     SETTLE_TIME_CONSTANTS,
 )
 
+
 @dataclass(frozen=True)
 class StepInfo:
     """Where and how the input moved in a test.
