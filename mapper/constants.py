@@ -23,6 +23,7 @@ __all__ = [
     "QUANTUM_LEVELS",
     "CLIP_SPAN_FRACTION",
     "MISFIT_FRACTION",
+    "RELEVANT_CHANGE_RATIO",
 ]
 
 # two-sided 95 % point of the standard normal (any statistics table; scipy.stats.norm.ppf(0.975))
@@ -45,3 +46,10 @@ MOVE_FRACTION = 0.10  # input moves smaller than this share of the main step are
 QUANTUM_LEVELS = 50  # fewer output levels than this across the response: quantised
 CLIP_SPAN_FRACTION = 0.005  # within 0.5 % of an instrument limit counts as at the limit
 MISFIT_FRACTION = 0.10  # systematic residual beyond 10 % of the response: poor fit
+
+# --- operating map ----------------------------------------------------------------------------
+# Smallest change of a parameter over the tested range that matters for one controller: a loop tuned
+# by SIMC with tau_c = theta, L = e^(-theta s)/(2 theta s), has Ms 1.59 (Skogestad 2003); its loop gain
+# times 1.4 gives Ms 2.0, the default limit (computed from that loop). The map says "not enough tests"
+# rather than "constant" while a change of this factor is still inside the uncertainty.
+RELEVANT_CHANGE_RATIO = 1.4

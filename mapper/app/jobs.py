@@ -5,11 +5,11 @@ command line stays thin and notebooks can call the same functions.
 
 from __future__ import annotations
 
-import json
 import shutil
 import time
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any, cast
 
 import numpy as np
 import pandas as pd
@@ -18,7 +18,7 @@ from mapper.analysis.compare import compare_campaigns, compare_directions, compa
 from mapper.analysis.opmap import OperatingMap, build_map
 from mapper.analysis.verdict import Verdict, decide
 from mapper.errors import MapperError, NotFoundError
-from mapper.identification.models import simulate_fopdt, simulate_integrating
+from mapper.identification.identify import FitResult
 from mapper.store.database import Store
 
 SAFETY_NOTE = ("Step tests and new tuning can hurt people and equipment: agree limits with "
@@ -80,7 +80,8 @@ def load_campaign_data(store: Store, campaign: str | None = None) -> CampaignDat
 AGAINST = {"level": "level", "input": "input_level"}
 
 
-def operating_map(store_path, *, campaign: str | None = None, against: str = "level") -> tuple[CampaignData, OperatingMap]:
+def operating_map(store_path, *, campaign: str | None = None,
+                  against: str = "level") -> tuple[CampaignData, OperatingMap]:
     """The operating map of a campaign (trends of gain, time constant, dead time, K/tau).
 
     ``against="level"`` maps against the operating level in output units (the brief's
@@ -133,21 +134,10 @@ def compare_two(store_path, first: str, second: str) -> list[dict]:
 
 
 def _fitted_curve(fit: dict | None, t: np.ndarray, u: np.ndarray) -> np.ndarray | None:
-    if not fit or fit.get("model") not in ("fopdt", "integrating"):
+    if not fit or fit.get("model") not in ("fopdt", "integrating") or len(t) < 2:
         return None
-    settings = json.loads(fit.get("settings") or "{}")
-    offset = settings.get("offset", fit.get("y_before"))
-    u0 = settings.get("input_before", float(u[0]))
-    gain, dead_time = _finite(fit.get("gain")), _finite(fit.get("dead_time"))
-    if offset is None or gain is None or dead_time is None or len(t) < 2:
-        return None
-    period = float(np.median(np.diff(t)))
-    if fit["model"] == "integrating":
-        return simulate_integrating(u, period, gain, dead_time, u0=u0, y0=offset)
-    time_constant = _finite(fit.get("time_constant"))
-    if time_constant is None:
-        return None
-    return simulate_fopdt(u, period, gain, time_constant, dead_time, u0=u0, y0=offset)
+    curve = FitResult.from_row(fit).fitted(t, u)
+    return curve if np.isfinite(curve).any() else None
 
 
 def _iter_tests(store: Store, params: pd.DataFrame, *, batch: int = 32):
@@ -158,7 +148,7 @@ def _iter_tests(store: Store, params: pd.DataFrame, *, batch: int = 32):
     a time, so at most ``batch`` tests' samples are in memory whatever the campaign size.
     """
     from mapper.presentation.report import test_sort_key
-    rows = sorted(params.to_dict("records"), key=test_sort_key)
+    rows = sorted(cast("list[dict[str, Any]]", params.to_dict("records")), key=test_sort_key)
     for start in range(0, len(rows), batch):
         chunk = rows[start:start + batch]
         ids = [int(row["test_id"]) for row in chunk]
@@ -222,8 +212,9 @@ def analyse_store(store_path, *, out_dir: Path, campaign: str | None = None) -> 
 
 
 def sample_campaign_folder() -> Path:
-    """The bundled sample campaign (beside the package in a source checkout)."""
-    return Path(__file__).resolve().parents[2] / "sample_campaign"
+    """The sample campaign shipped inside the package (package data, in wheels too)."""
+    from mapper.demo.sample import sample_campaign_folder as packaged
+    return packaged()
 
 
 @dataclass
@@ -251,7 +242,7 @@ def run_demo(out_dir: Path, *, png: bool = True) -> DemoOutcome:
     folders = sorted(p for p in source.iterdir() if (p / "campaign.toml").is_file()) if source.is_dir() else []
     if not folders:
         raise NotFoundError(f"the sample campaign is missing ({source})",
-                            hint="run 'python -m mapper.demo --write sample_campaign' in the source checkout")
+                            hint="reinstall mapper; the sample campaign ships inside the package")
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     db = out_dir / "demo.duckdb"
@@ -275,6 +266,7 @@ def run_demo(out_dir: Path, *, png: bool = True) -> DemoOutcome:
     report = write_campaign_report(db, out_dir / "report.html", campaign=newest, png_dir=png_dir,
                                    compare_with=names[0] if len(names) > 1 else None,
                                    schedule_out=out_dir / "schedule.csv")
+    assert report.verdict is not None  # write_campaign_report always decides
     result = report.verdict.to_dict()
     lines += ["", f"Verdict: {result['decision']}"] + [f"  - {r}" for r in result["reasons"]]
     if len(names) > 1:

@@ -16,6 +16,7 @@ from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import duckdb
 import numpy as np
@@ -115,7 +116,7 @@ class ScannedFile:
     path: Path
     columns: tuple[str, ...]
     types: dict[str, str]
-    values: dict[str, np.ndarray]
+    values: dict[str, Any]  # numpy arrays, or pandas Categorical for DuckDB ENUM columns
 
     @property
     def delimiter(self) -> str | None:
@@ -123,8 +124,9 @@ class ScannedFile:
         if self.path.suffix.lower() in (".parquet", ".pq"):
             return None
         try:
-            return _reader_connection().execute(
-                "SELECT delimiter FROM sniff_csv(?)", [str(self.path)]).fetchone()[0]
+            row = _reader_connection().execute(
+                "SELECT delimiter FROM sniff_csv(?)", [str(self.path)]).fetchone()
+            return None if row is None else row[0]
         except duckdb.Error:
             return None
 
@@ -433,7 +435,7 @@ class Store:
             "SELECT test_id, t, u, y FROM samples WHERE test_id IN (SELECT unnest(?::INTEGER[])) "
             "ORDER BY test_id, sample_index", [list(map(int, test_ids))]).fetchnumpy()
         ids = np.asarray(arrays["test_id"])
-        result = {}
+        result: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
         if len(ids) == 0:
             return result
         cuts = np.flatnonzero(np.diff(ids)) + 1
@@ -485,13 +487,11 @@ class Store:
         return {int(r[0]): float(r[1]) for r in rows if r[1] is not None}
 
     def counts(self) -> dict[str, int]:
-        con = self.connection
-        return {
-            "campaigns": con.execute("SELECT count(*) FROM campaigns").fetchone()[0],
-            "tests": con.execute("SELECT count(*) FROM tests").fetchone()[0],
-            "samples": con.execute("SELECT count(*) FROM samples").fetchone()[0],
-            "fits": con.execute("SELECT count(*) FROM fits").fetchone()[0],
-        }
+        row = self.connection.execute(
+            "SELECT (SELECT count(*) FROM campaigns), (SELECT count(*) FROM tests), "
+            "(SELECT count(*) FROM samples), (SELECT count(*) FROM fits)").fetchone()
+        assert row is not None  # an aggregate query always returns one row
+        return dict(zip(("campaigns", "tests", "samples", "fits"), map(int, row)))
 
 
 # -- reading data files through DuckDB's own readers -------------------------------------
@@ -631,5 +631,6 @@ def bare_scan(paths: Sequence[Path]) -> int:
     con = _reader_connection()
     total = 0
     for path in paths:
-        total += con.execute("SELECT count(*) FROM read_csv(?)", [str(path)]).fetchone()[0]
+        row = con.execute("SELECT count(*) FROM read_csv(?)", [str(path)]).fetchone()
+        total += 0 if row is None else int(row[0])
     return total

@@ -156,7 +156,7 @@ def _parse_time(path: Path, column: str, raw: np.ndarray, kind: str, seconds_per
             raise DataError(f"{path}: empty timestamp in column '{column}' at line {_line(i, offset)}",
                             hint="fill or remove the incomplete rows; gaps in a log must not be blank cells")
     elif any(kind.startswith(t) for t in _NUMERIC_TYPES):
-        values = np.ma.filled(np.ma.asarray(raw, dtype=float), np.nan)
+        values: np.ndarray = np.ma.filled(np.ma.asarray(raw, dtype=float), np.nan)
         _check_finite(path, column, values, offset)
         return (values - values[0]) * seconds_per_unit, None, None
     else:  # text: numbers written oddly, or ISO-8601 timestamps
@@ -179,8 +179,8 @@ def _parse_time(path: Path, column: str, raw: np.ndarray, kind: str, seconds_per
                 hint="use ISO-8601 timestamps (2026-03-04T10:15:00, optionally with +01:00 or Z) "
                      "or numeric time in seconds")
     ns = stamps.dt.tz_convert("UTC").dt.tz_localize(None) if stamps.dt.tz is not None else stamps
-    ns = ns.to_numpy(dtype="datetime64[ns]").astype(np.int64)
-    seconds = (ns - ns[0]) / 1e9
+    nanoseconds = ns.to_numpy(dtype="datetime64[ns]").astype(np.int64)
+    seconds = (nanoseconds - nanoseconds[0]) / 1e9
     first = stamps.iloc[0]
     zone = str(first.tzinfo) if first.tzinfo is not None else None
     if kind.startswith("VARCHAR") or not kind.startswith("TIMESTAMP"):
@@ -397,7 +397,8 @@ def import_campaign(store: Store, campaign: Campaign,
             progress(number, total, entry.file)
         if number > scanned_up_to:
             # read the next batch of new files in one pass of the reader
-            upcoming, size = [], 0
+            upcoming: list[Path] = []
+            size = 0
             for i, e in enumerate(campaign.tests[number - 1:], start=number):
                 if len(upcoming) >= SCAN_FILES or size >= SCAN_BYTES:
                     break

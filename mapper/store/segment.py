@@ -137,7 +137,7 @@ def split_signals(signals: Signals, *, windows: Sequence[tuple[float, float]] = 
             flags = ["several_input_moves"] if len(moves) > 1 else []
             pieces.append((0, len(t), flags))
         else:
-            for i, (start, end) in enumerate(moves):
+            for i, (start, _end) in enumerate(moves):
                 before = 0 if i == 0 else moves[i - 1][1] + 1
                 lo = start - max((start - before) // 2, min(MIN_FILE_SAMPLES // 2, start - before)) if i else 0
                 hi = moves[i + 1][0] if i + 1 < len(moves) else len(t)
