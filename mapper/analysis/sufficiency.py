@@ -66,7 +66,8 @@ def _new_levels(levels, output_range) -> list[float]:
     return [round(v, 6) for v in below[:1] + above[:1]]
 
 
-def check_sufficiency(used: pd.DataFrame, *, against: str = "level", output_range=None) -> Shortfall | None:
+def check_sufficiency(used: pd.DataFrame, *, against: str = "level", output_range=None,
+                      loop_gain_trend=None) -> Shortfall | None:
     """None when the tests can support a verdict, else a :class:`Shortfall` naming what to add.
 
     Parameters
@@ -77,11 +78,16 @@ def check_sufficiency(used: pd.DataFrame, *, against: str = "level", output_rang
         Level column.
     output_range : pair of float, optional
         Instrument range of the output, used to suggest levels when only one was tested.
+    loop_gain_trend : Trend, optional
+        The map's trend of the parameter that sets the controller (K/tau for a lag-dominant loop, K
+        otherwise). When the map says its tests cannot rule out a change that matters
+        (``enough_data`` False), the verdict cannot either.
 
     Notes
     -----
-    Enough means at least three distinct levels (levels within 2 % of the tested span count as one)
-    and at least one level tested twice.
+    Enough means at least three distinct levels (levels within 2 % of the tested span count as one),
+    at least one level tested twice, and a loop-gain trend that is either significant or tight enough
+    to rule out a change of the size that matters (the map's ``RELEVANT_CHANGE_RATIO``).
     """
     x = pd.to_numeric(used[against], errors="coerce").to_numpy(float)
     x = x[np.isfinite(x)]
@@ -89,11 +95,19 @@ def check_sufficiency(used: pd.DataFrame, *, against: str = "level", output_rang
     levels = [float(np.mean(x[labels == k])) for k in range(labels.max() + 1)] if x.size else []
     counts = [int(np.sum(labels == k)) for k in range(len(levels))]
     repeated = any(c >= 2 for c in counts)
-    if len(levels) >= MIN_LEVELS and repeated:
+    loose = loop_gain_trend is not None and not getattr(loop_gain_trend, "enough_data", True)
+    if len(levels) >= MIN_LEVELS and repeated and not loose:
         return None
     add = _new_levels(levels, output_range) if len(levels) < MIN_LEVELS else []
+    if loose and len(levels) >= MIN_LEVELS:
+        add = [float(v) for v in loop_gain_trend.levels_to_add]
     repeat_at = [] if repeated else ([lv for lv in levels] if len(levels) < MIN_LEVELS else [levels[len(levels) // 2]])
     parts = []
+    if loose and len(levels) >= MIN_LEVELS:
+        ratio = loop_gain_trend.detectable_ratio
+        parts.append(f"narrow the {loop_gain_trend.parameter.replace('_', ' ')} (its tests still allow a change "
+                     f"by a factor of {ratio:.2g} across the range) with tests at {against} "
+                     + ", ".join(format_level(v) for v in add))
     if len(levels) < MIN_LEVELS:
         missing = MIN_LEVELS - len(levels)
         where = (f" (for example at {against} {', '.join(format_level(v) for v in add)})" if add else
@@ -104,7 +118,8 @@ def check_sufficiency(used: pd.DataFrame, *, against: str = "level", output_rang
     tested = ", ".join(format_level(v) for v in levels)
     sentence = (f"Not enough tests to judge: {len(x)} test{'s' if len(x) != 1 else ''} at {len(levels)} "
                 f"level{'s' if len(levels) != 1 else ''} ({against} {tested}); a verdict needs at least "
-                f"{MIN_LEVELS} levels and one repeat to see how the process moves across the range. To settle "
+                f"{MIN_LEVELS} levels, one repeat and tests tight enough to show how the process moves across the "
+                f"range. To settle "
                 f"it, {' and '.join(parts)}. The figures below are for the tested levels only; no controller "
                 f"or schedule is handed over.")
     return Shortfall(levels=tuple(levels), tests=int(len(x)), levels_to_add=tuple(add),

@@ -22,7 +22,7 @@ import numpy as np
 import pandas as pd
 
 from mapper.analysis.controller_search import CandidateTable, make_points, measure, search, serves
-from mapper.analysis.opmap import OperatingMap, build_map, format_level, format_limit, usable_tests
+from mapper.analysis.opmap import OperatingMap, build_map, excluded_mask, format_level, format_limit, usable_tests
 from mapper.analysis.sufficiency import check_sufficiency
 from mapper.analysis.tuning import dimensionless_gain, tune
 from mapper.errors import DataError
@@ -297,14 +297,6 @@ def _performance_reasons(reasons: _Reasons, rows, controller, single, span, agai
                     levels=len(rows))
 
 
-def _usable(params: pd.DataFrame) -> pd.DataFrame:
-    """Rows the verdict may use: excluded tests (column ``excluded``) are left out."""
-    if "excluded" in params.columns:
-        excluded = params["excluded"].fillna(False).astype(bool)
-        params = params[~excluded.to_numpy()]
-    return params
-
-
 def decide(params: pd.DataFrame, *, ms_max: float = 2.0, slowdown_max: float = 2.0,
            closed_loop_time: float | None = None, ranges=None, rule: str = "simc", against: str = "level",
            opmap: OperatingMap | None = None) -> Verdict:
@@ -328,7 +320,7 @@ def decide(params: pd.DataFrame, *, ms_max: float = 2.0, slowdown_max: float = 2
     against : str
         Level column for the map.
     opmap : OperatingMap, optional
-        A map already built from ``params`` (rebuilt when it holds excluded tests).
+        A map already built from ``params`` (excluded tests left out, as :func:`build_map` does).
 
     Returns
     -------
@@ -357,10 +349,9 @@ def decide(params: pd.DataFrame, *, ms_max: float = 2.0, slowdown_max: float = 2
         raise DataError(f"ms_max must be above 1; got {ms_max!r}", hint="typical limits are 1.2 to 2.0")
     if not slowdown_max >= 1.0:
         raise DataError(f"slowdown_max must be at least 1; got {slowdown_max!r}")
-    params = _usable(params)
+    params = params[~excluded_mask(params)]  # excluded tests never enter the verdict
     used = usable_tests(params, against=against)
-    if opmap is None or opmap.n_tests != len(used):
-        opmap = build_map(params, against=against)
+    opmap = opmap or build_map(params, against=against)
     campaigns: list = list(used["campaign"].dropna().unique()) if "campaign" in used.columns else []
     campaign = str(campaigns[0]) if len(campaigns) == 1 else None
     input_range, output_range = _ranges(ranges)
@@ -377,7 +368,10 @@ def decide(params: pd.DataFrame, *, ms_max: float = 2.0, slowdown_max: float = 2
     controller, _ = search(points, ms_max, slowdown_max, table=table)
     rows = measure(controller.kc, controller.ti, points)
     single = serves(rows, ms_max, slowdown_max)
-    shortfall = check_sufficiency(used, against=against, output_range=output_range)
+    lag_dominant = opmap.model == "fopdt" and all(
+        (p.time_constant or 0.0) >= LAG_DOMINANT_RATIO * p.dead_time for p in points)
+    shortfall = check_sufficiency(used, against=against, output_range=output_range,
+                                  loop_gain_trend=opmap.trend("gain_over_time_constant" if lag_dominant else "gain"))
     decision = "insufficient" if shortfall is not None else ("single" if single else "schedule")
     span = f"{against} {format_level(opmap.level_min)} to {format_level(opmap.level_max)}"
     reasons = _Reasons()
