@@ -23,6 +23,7 @@ import pandas as pd
 
 from mapper.analysis.controller_search import CandidateTable, make_points, measure, search, serves
 from mapper.analysis.opmap import OperatingMap, build_map, excluded_mask, format_level, format_limit, usable_tests
+from mapper.analysis.responses import response_rows
 from mapper.analysis.sufficiency import check_sufficiency
 from mapper.analysis.tuning import dimensionless_gain, tune
 from mapper.errors import DataError
@@ -87,6 +88,21 @@ class Verdict:
                       "points": list(self.points), "schedule": list(self.schedule),
                       "schedule_points": list(self.schedule_points),
                       "ms_max": self.ms_max, "slowdown_max": self.slowdown_max})
+
+    def report_dict(self) -> dict:
+        """:meth:`to_dict` plus ``responses``: simulated closed-loop curves for the report's chart."""
+        out = self.to_dict()
+        out["responses"] = response_rows(out)
+        return out
+
+    def level_rows(self, *, schedule: bool = False) -> list[dict]:
+        """Per tested level: Ms, margins, IAE ratio, peak ratio and overshoot, for printing.
+
+        ``schedule=True`` gives the schedule as applied (interpolated) instead of the single controller.
+        """
+        rows = self.schedule_points if schedule else self.points
+        keys = ("level", "kc", "ti", "ms", "gain_margin", "phase_margin_deg", "iae_ratio", "peak_ratio", "overshoot")
+        return [{k: row.get(k) for k in keys} for row in rows]
 
     def write_schedule_csv(self, path, units: dict | None = None) -> None:
         """Write the schedule table as CSV, with ``#`` header lines for units and the safety caution.
