@@ -1,4 +1,5 @@
-"""Import through the real `mapper` entry point: counts, idempotence, the view, bad input."""
+"""Import through the `mapper` command line (in-process, and once as the installed command): counts,
+idempotence, the view, bad input."""
 
 from __future__ import annotations
 
@@ -13,7 +14,8 @@ import pytest
 
 from conftest import run_mapper, write_campaign, write_step_csv
 from mapper.store.ingest import read_signals
-from mapper.store.database import PARAM_COLUMNS, Store
+from mapper.columns import TEST_PARAMS_NAMES
+from mapper.store.database import Store
 
 
 def stored(db: Path) -> list[tuple]:
@@ -23,7 +25,7 @@ def stored(db: Path) -> list[tuple]:
 
 def test_import_then_reimport_is_idempotent(tmp_path, small_campaign):
     db = tmp_path / "store.duckdb"
-    first = run_mapper("import", small_campaign, db=db)
+    first = run_mapper("import", small_campaign, db=db, real_process=True)  # the installed command
     assert first.returncode == 0, first.stderr
     assert "imported 4 file(s) as 4 test(s)" in first.stdout
     again = run_mapper("import", small_campaign, db=db)
@@ -40,7 +42,7 @@ def test_view_has_every_public_column_and_plain_client_can_query(tmp_path, small
         levels = con.execute("SELECT level, direction FROM test_params ORDER BY test_id").fetchall()
         samples = con.execute("SELECT count(*) FROM samples").fetchone()[0]
         version = con.execute("SELECT value FROM mapper_meta WHERE key='schema_version'").fetchone()[0]
-    assert columns == list(PARAM_COLUMNS)
+    assert columns == list(TEST_PARAMS_NAMES)
     assert [lv for lv, _ in levels] == [30.0, 30.0, 60.0, 60.0]  # campaign file wins
     assert [d for _, d in levels] == ["up", "down", "up", "down"]
     assert samples == 4 * 200
@@ -54,10 +56,10 @@ def test_params_json_and_filters(tmp_path, small_campaign):
     assert out.returncode == 0, out.stderr
     rows = json.loads(out.stdout)
     assert len(rows) == 1 and rows[0]["level"] == 60.0 and rows[0]["direction"] == "down"
-    assert set(rows[0]) == set(PARAM_COLUMNS)
+    assert set(rows[0]) == set(TEST_PARAMS_NAMES)
     assert rows[0]["gain"] is None  # not fitted yet
     csv_out = run_mapper("params", "--format", "csv", db=db)
-    assert csv_out.stdout.splitlines()[0].split(",") == list(PARAM_COLUMNS)
+    assert csv_out.stdout.splitlines()[0].split(",") == list(TEST_PARAMS_NAMES)
 
 
 def test_loose_files_with_columns(tmp_path):
@@ -228,4 +230,4 @@ def test_store_path_from_environment(tmp_path, small_campaign):
 
 def test_wrong_usage_exits_2(tmp_path):
     assert run_mapper("params", "--direction", "sideways", db=tmp_path / "x.duckdb").returncode == 2
-    assert run_mapper("no-such-command").returncode == 2
+    assert run_mapper("no-such-command", real_process=True).returncode == 2
