@@ -21,6 +21,7 @@ import numpy as np
 from mapper.constants import MIN_AFTER_STEP_SAMPLES, MIN_BASELINE_SAMPLES, MIN_FIT_SAMPLES
 from mapper.errors import DataError, IdentificationError
 from mapper.identification import estimators as est
+from mapper.identification.disturbance import disturbance_flags
 from mapper.identification.flags import flag_text, grade
 from mapper.identification.models import simulate_fopdt, simulate_integrating
 from mapper.identification.quality import (
@@ -31,7 +32,6 @@ from mapper.identification.quality import (
     noise_sd,
     standard_deviation,
 )
-from mapper.identification.disturbance import disturbance_flags
 from mapper.identification.uncertainty import disturbance_covariance
 
 __all__ = ["ESTIMATORS", "FitResult", "identify", "find_step", "StepInfo"]
