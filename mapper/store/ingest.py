@@ -27,37 +27,13 @@ from mapper.errors import CampaignFileError, DataError, MapperError
 from mapper.store.campaign import Campaign, TestEntry, load_campaign
 from mapper.store.database import Store
 from mapper.store.readers import ScannedFile, scan_file, scan_first_text, scan_many
-from mapper.store.segment import Signals, split_signals
+from mapper.store.segment import Signals, TestWindow, split_signals
 
 MAX_MAGNITUDE = 1e12
 _NUMERIC_TYPES = ("DOUBLE", "FLOAT", "BIGINT", "INTEGER", "SMALLINT", "TINYINT", "HUGEINT",
                   "UBIGINT", "UINTEGER", "USMALLINT", "UTINYINT", "DECIMAL", "REAL")
 _ZONE = re.compile(r"(?:Z|[+-]\d\d:?\d\d)$")
 _DECIMAL_COMMA = re.compile(r"^\s*[-+]?\d*,\d+([eE][-+]?\d+)?\s*$")
-
-
-@dataclass(frozen=True)
-class TestWindow:
-    """One test ready to store: a window of a file on a uniform time grid."""
-
-    file: str
-    source_path: Path
-    source_hash: str
-    window_index: int
-    window_start: float
-    window_end: float
-    t: np.ndarray
-    u: np.ndarray
-    y: np.ndarray
-    period: float
-    input_step: float
-    direction: str
-    level_estimate: float
-    level_given: float | None = None
-    note: str = ""
-    start_time: str | None = None
-    time_zone: str | None = None
-    flags: tuple[str, ...] = ()
 
 
 @dataclass
@@ -325,12 +301,10 @@ def windows_for_file(entry: TestEntry, campaign: Campaign, source_hash: str,
     except DataError as exc:
         raise DataError(f"{entry.path}: {exc.args[0]}", hint=exc.hint) from None
     single = len(pieces) == 1
-    return [TestWindow(file=entry.file, source_path=entry.path, source_hash=source_hash,
-                       window_index=i, note=entry.note, start_time=signals.start_time,
-                       time_zone=signals.time_zone,
-                       level_given=entry.level if single else None, **piece)
+    return [TestWindow.from_cut(piece, file=entry.file, source_path=entry.path, source_hash=source_hash,
+                                window_index=i, note=entry.note, start_time=signals.start_time,
+                                time_zone=signals.time_zone, level_given=entry.level if single else None)
             for i, piece in enumerate(pieces)]
-
 
 def _hash_settings(campaign: Campaign, entry: TestEntry) -> dict:
     return {"columns": [campaign.time_column, campaign.input_column, campaign.output_column],
