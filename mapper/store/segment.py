@@ -32,6 +32,7 @@ class Signals:
     start_time: str | None = None
     time_zone: str | None = None
     flags: tuple[str, ...] = ()
+    dropped_rows: int = 0  # rows with unreadable cells dropped at import (on request)
 
 
 @dataclass(frozen=True)
