@@ -25,7 +25,7 @@ from mapper.identification.uncertainty import DisturbanceCovariance, _ar1_times
 
 __all__ = ["LoadChange", "find_load_change", "record_wander", "disturbance_flags"]
 
-MAX_CANDIDATES = 150  # change instants tried per test
+MAX_CANDIDATES = 60  # change instants tried per test
 # limits of the load_change flag, set on seeded simulations (scripts/interval_study.py
 # plants; tests/test_uncertainty.py): no flag on 120 tests with white, fast AR(1), slow
 # AR(1) or random-walk noise; a load step of 30 % of the response is flagged
@@ -103,7 +103,9 @@ def find_load_change(
     candidates = np.unique(np.linspace(first, last, min(MAX_CANDIDATES, last - first)).astype(int))
     lag = np.arange(n)[:, None] - candidates[None, :]
     if time_constant_samples is not None and time_constant_samples > 0:
-        x = np.where(lag >= 0, -np.expm1(-np.maximum(lag, 0) / time_constant_samples), 0.0)
+        # one response, shifted: index -1 of the padded response is the zero before the change
+        response = np.append(-np.expm1(-np.arange(n) / time_constant_samples), 0.0)
+        x = response[np.where(lag >= 0, lag, -1)]
     else:
         x = (lag >= 0).astype(float)
     q, _ = np.linalg.qr(J / np.maximum(np.linalg.norm(J, axis=0), 1e-300))
