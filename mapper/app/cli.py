@@ -181,6 +181,8 @@ def map_command(
     lines += [f"operating map of '{data.name}' against {against.value} "
               f"({opmap.level_min:g} to {opmap.level_max:g})", format_records(rows, "table", kind="map"), ""]
     lines += [f"- {row['reason']}" for row in rows]
+    if opmap.influence_sentence:
+        lines += ["", opmap.influence_sentence] + [f"  - {d.sentence}" for d in opmap.depends_on]
     _say(lines)
 
 
@@ -228,6 +230,8 @@ def verdict_command(
         return
     lines = [data.note] if data.note else []
     lines += [f"decision: {result['decision']}"] + [f"  - {r}" for r in result["reasons"]]
+    if verdict.depends_on_sentence:
+        lines += [f"  - {verdict.depends_on_sentence}"] + [f"    {d['sentence']}" for d in result["depends_on"]]
     lines += ["", "single controller at each tested level (Ms; IAE and peak after a load step, ratios to local "
               "SIMC; setpoint overshoot):", format_records(verdict.level_rows(), "table")]
     if verdict.schedule_points and result["decision"] == "schedule":
