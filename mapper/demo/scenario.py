@@ -10,7 +10,8 @@ This module owns the physics (:func:`simulate_exchanger`), its analytic linearis
 (:func:`write_sample_campaign`). It depends on numpy and scipy only. The ``mapper demo``
 command that runs the whole job on the written folder lives elsewhere.
 
-Run ``python -m mapper.demo --write sample_campaign`` to regenerate the folder; output is
+Run ``python -m mapper.demo --write sample_campaign`` to regenerate the folder (then copy it to
+``mapper/demo/sample_campaign/``, the packaged copy that ``mapper demo`` reads); output is
 deterministic for a given seed.
 """
 
