@@ -200,7 +200,7 @@ def least_squares_fopdt_from_state(
     at_bound = bool(p[0] >= upper[0] - 1e-3 or p[0] <= lower[0] + 1e-3)
     jac = np.column_stack((phi[0], phi[1], J[0] / (tau_n * period), J[1] / period, phi[2]))
     if free == "ramp":
-        start_state = 0.0
+        start_state = x0  # for the line: its change over the whole window
         jac[:, 4] = phi[2] / n
     else:
         start_state = x0 + K * _history_amplitude(v, history, tau_n, float(p[1]), n)

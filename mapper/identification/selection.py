@@ -18,7 +18,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from mapper.constants import MIN_BASELINE_SAMPLES
+from mapper.constants import DRIFT_FRACTION, MIN_BASELINE_SAMPLES
 from mapper.identification import estimators as est
 from mapper.identification.nonsteady import (
     least_squares_fopdt_from_state,
@@ -114,7 +114,11 @@ def choose_least_squares(
         line = least_squares_fopdt_from_state(period, v, y, history, step.index, guess, free="ramp")
         c = inflation(moving) if moving is not None else 1.0
         if moving is not None and line is not None:
-            drift = aic(line, c) < aic(moving, c) - DRIFT_EVIDENCE
+            # a drift worth a flag: clearly the better explanation, and large enough to
+            # matter (carried over the window, over 10 % of the response; common practice)
+            size = abs(line.estimate.gain * step.size)
+            drift = (aic(line, c) < aic(moving, c) - DRIFT_EVIDENCE
+                     and abs(line.estimate.start_state) > DRIFT_FRACTION * size)
         if moving is not None:
             delta = aic(moving, c) - aic(rest, c)
             if history > 0 or delta < 0.0:
