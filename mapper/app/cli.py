@@ -9,8 +9,9 @@ from __future__ import annotations
 import functools
 import json
 import sys
-from enum import Enum
+from enum import StrEnum
 from pathlib import Path
+from typing import Any
 
 import typer
 
@@ -21,21 +22,21 @@ app = typer.Typer(add_completion=False, no_args_is_help=True, pretty_exceptions_
                   pretty_exceptions_enable=False,
                   help="Step-test campaigns to FOPDT models, an operating map and a "
                        "single-controller-or-schedule verdict.")
-_state = {"db": None, "debug": False}
+_state: dict[str, Any] = {"db": None, "debug": False}
 
 
-class Format(str, Enum):
+class Format(StrEnum):
     table = "table"
     csv = "csv"
     json = "json"
 
 
-class Against(str, Enum):
+class Against(StrEnum):
     level = "level"
     input = "input"
 
 
-class Direction(str, Enum):
+class Direction(StrEnum):
     up = "up"
     down = "down"
 
@@ -131,7 +132,8 @@ def fit_command(
     refit: bool = typer.Option(False, "--refit", help="redo every test, not only new ones"),
     method: str = typer.Option("least_squares", "--method",
                                help="least_squares, graphical, smith, sundaresan or area"),
-    workers: int | None = typer.Option(None, "--workers", help="processes to use (default: all cores for large campaigns)"),
+    workers: int | None = typer.Option(None, "--workers",
+                                       help="processes to use (default: all cores for large campaigns)"),
 ) -> None:
     """Identify an FOPDT (or integrating) model for every test not yet fitted."""
     from mapper.identification.fitting import fit_store
@@ -183,7 +185,8 @@ def map_command(
 def at_command(
     level: float = typer.Argument(..., help="operating level (output units)"),
     campaign: str | None = typer.Option(None, "--campaign"),
-    extrapolate: bool = typer.Option(False, "--extrapolate", help="allow a level outside the tested range (with a warning)"),
+    extrapolate: bool = typer.Option(False, "--extrapolate",
+                                     help="allow a level outside the tested range (with a warning)"),
     against: Against = typer.Option(Against.level, "--against", help="LEVEL is an output level or an input value"),
     format: Format = FormatOption,
 ) -> None:
@@ -202,7 +205,8 @@ def verdict_command(
     campaign: str | None = typer.Option(None, "--campaign"),
     ms_max: float = typer.Option(2.0, "--ms-max", help="largest acceptable maximum sensitivity Ms"),
     slowdown_max: float = typer.Option(2.0, "--slowdown-max", help="largest acceptable slowdown against local tuning"),
-    closed_loop_time: float | None = typer.Option(None, "--closed-loop-time", help="SIMC tau_c in s (default: the dead time)"),
+    closed_loop_time: float | None = typer.Option(None, "--closed-loop-time",
+                                                  help="SIMC tau_c in s (default: the dead time)"),
     rule: str = typer.Option("simc", "--rule", help="local tuning rule: simc or lambda"),
     schedule_out: Path | None = typer.Option(None, "--schedule-out", help="write the schedule table as CSV"),
     format: Format = FormatOption,

@@ -9,6 +9,7 @@ import shutil
 import time
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any, cast
 
 import numpy as np
 import pandas as pd
@@ -79,7 +80,8 @@ def load_campaign_data(store: Store, campaign: str | None = None) -> CampaignDat
 AGAINST = {"level": "level", "input": "input_level"}
 
 
-def operating_map(store_path, *, campaign: str | None = None, against: str = "level") -> tuple[CampaignData, OperatingMap]:
+def operating_map(store_path, *, campaign: str | None = None,
+                  against: str = "level") -> tuple[CampaignData, OperatingMap]:
     """The operating map of a campaign (trends of gain, time constant, dead time, K/tau).
 
     ``against="level"`` maps against the operating level in output units (the brief's
@@ -146,7 +148,7 @@ def _iter_tests(store: Store, params: pd.DataFrame, *, batch: int = 32):
     a time, so at most ``batch`` tests' samples are in memory whatever the campaign size.
     """
     from mapper.presentation.report import test_sort_key
-    rows = sorted(params.to_dict("records"), key=test_sort_key)
+    rows = sorted(cast("list[dict[str, Any]]", params.to_dict("records")), key=test_sort_key)
     for start in range(0, len(rows), batch):
         chunk = rows[start:start + batch]
         ids = [int(row["test_id"]) for row in chunk]
@@ -264,6 +266,7 @@ def run_demo(out_dir: Path, *, png: bool = True) -> DemoOutcome:
     report = write_campaign_report(db, out_dir / "report.html", campaign=newest, png_dir=png_dir,
                                    compare_with=names[0] if len(names) > 1 else None,
                                    schedule_out=out_dir / "schedule.csv")
+    assert report.verdict is not None  # write_campaign_report always decides
     result = report.verdict.to_dict()
     lines += ["", f"Verdict: {result['decision']}"] + [f"  - {r}" for r in result["reasons"]]
     if len(names) > 1:

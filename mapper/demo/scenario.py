@@ -24,6 +24,7 @@ import math
 from collections.abc import Callable
 from dataclasses import dataclass, replace
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 from scipy.integrate import solve_ivp
@@ -209,8 +210,8 @@ def valve_ramp(start: float, moves, rate: float) -> Callable:
         position = float(target)
     knots_t.append(1e12)
     knots_x.append(position)
-    knots_t, knots_x = np.array(knots_t), np.array(knots_x)
-    return lambda t: np.interp(t, knots_t, knots_x)
+    times, values = np.array(knots_t), np.array(knots_x)
+    return lambda t: np.interp(t, times, values)
 
 
 def simulate_exchanger(t, valve_position, *, flow, inlet_temperature=15.0,
@@ -522,7 +523,7 @@ def write_sample_campaign(folder, *, seed: int = DEFAULT_SEED) -> dict:
         ``clipped``).
     """
     root = Path(folder)
-    summary = {"folder": str(root), "bytes": 0, "campaigns": []}
+    summary: dict[str, Any] = {"folder": str(root), "bytes": 0, "campaigns": []}
     truth_rows = []
     for index, (sub, name, params, inlet, period, noise_sd, explicit, planner) in enumerate(
             _CAMPAIGNS):

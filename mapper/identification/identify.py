@@ -14,16 +14,15 @@ import json
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
-from typing import ClassVar
 
 import numpy as np
 
+from mapper.columns import FIT_VALUE_NAMES, column
 from mapper.constants import MIN_AFTER_STEP_SAMPLES, MIN_BASELINE_SAMPLES, MIN_FIT_SAMPLES
 from mapper.errors import DataError, IdentificationError
 from mapper.identification import estimators as est
-from mapper.identification.models import simulate_fopdt, simulate_integrating
-from mapper.identification.selection import choose_least_squares
 from mapper.identification.flags import flag_text, grade
+from mapper.identification.models import simulate_fopdt, simulate_integrating
 from mapper.identification.quality import (
     StepInfo,
     assess,
@@ -32,6 +31,7 @@ from mapper.identification.quality import (
     noise_sd,
     standard_deviation,
 )
+from mapper.identification.selection import choose_least_squares
 from mapper.identification.uncertainty import sandwich_covariance, t_quantile
 
 __all__ = ["ESTIMATORS", "FitResult", "identify", "find_step", "StepInfo"]
@@ -121,18 +121,11 @@ class FitResult:
     model_evidence: str = ""
     settings: dict = field(default_factory=dict, hash=False, compare=False)
 
-    VALUE_FIELDS: ClassVar[tuple[str, ...]] = (
-        "model", "method", "gain", "gain_lo", "gain_hi", "time_constant",
-        "time_constant_lo", "time_constant_hi", "dead_time", "dead_time_lo",
-        "dead_time_hi", "nrmse", "quality", "input_step", "step_time", "y_before", "y_after",
-        "offset", "input_before", "start_state", "residual_sd", "autocorrelation",
-        "model_evidence",
-    )  # fmt: skip
-
     def to_row(self) -> dict:
-        """The one conversion for the store: value columns, ``flags`` and ``notes`` as
-        lists of str and ``settings`` as a dict."""
-        row = {key: getattr(self, key) for key in self.VALUE_FIELDS}
+        """The one conversion for the store: the value columns of the column registry
+        (:data:`mapper.columns.FIT_VALUE_NAMES`), ``flags`` and ``notes`` as lists of str
+        and ``settings`` as a dict."""
+        row = {key: getattr(self, key) for key in FIT_VALUE_NAMES}
         row["flags"] = list(self.flags)
         row["notes"] = list(self.notes)
         row["settings"] = dict(self.settings)
@@ -143,9 +136,9 @@ class FitResult:
         """The record back from a stored row (missing columns become None; ``settings``
         may be a dict or its JSON text)."""
         values: dict = {}
-        for key in cls.VALUE_FIELDS:
+        for key in FIT_VALUE_NAMES:
             value = row.get(key)
-            if key in ("model", "method", "quality", "model_evidence"):
+            if column(key).kind == "text":
                 values[key] = value if isinstance(value, str) else ("" if key == "model_evidence" else "none")
             else:
                 values[key] = _finite(value) if isinstance(value, (int, float)) else None
@@ -466,14 +459,15 @@ def _still_ramping(shape) -> bool:
 
 
 def _intervals(e: est.Estimate, cov, z) -> dict[str, tuple[float | None, float | None]]:
-    none = (None, None)
-    out = {"gain": none, "time_constant": none, "dead_time": none}
+    none: tuple[float | None, float | None] = (None, None)
+    out: dict[str, tuple[float | None, float | None]] = {"gain": none, "time_constant": none, "dead_time": none}
     if cov is None:
         return out
     sd = np.sqrt(np.clip(np.diag(cov), 0.0, np.inf))
     out["gain"] = (_finite(e.gain - z * sd[1]), _finite(e.gain + z * sd[1]))
     k = 2
     if e.model == "fopdt":
+        assert e.time_constant is not None  # an FOPDT estimate always carries one
         rel = sd[2] / e.time_constant  # log-scale interval stays positive
         if np.isfinite(rel) and rel < 50:
             out["time_constant"] = (

@@ -75,7 +75,7 @@ def format_records(records: Sequence[dict], fmt: str, *, kind: str | None = None
                 writer.writerow({k: (";".join(map(str, v)) if isinstance(v, list) else
                                      ("" if v is None else v)) for k, v in record.items()})
         return buffer.getvalue().rstrip("\n")
-    return table(records, _TABLE_COLUMNS.get(kind))
+    return table(records, _TABLE_COLUMNS.get(kind) if kind is not None else None)
 
 
 def format_object(obj: dict, fmt: str) -> str:
