@@ -413,8 +413,8 @@ class Store:
                include_rejected: bool = True) -> pd.DataFrame:
         """Rows of ``test_params`` with optional filters, ordered by campaign, level, id."""
         from mapper.store.queries import params_query
-        frame = self.connection.execute(*params_query(campaign, level_min, level_max, direction,
-                                                      include_rejected)).df()
+        sql, bound = params_query(campaign, level_min, level_max, direction, include_rejected)
+        frame = self.connection.execute(sql, bound).df()
         frame["flags"] = [list(f) if f is not None else [] for f in frame["flags"]]
         return frame
 

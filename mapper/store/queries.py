@@ -29,7 +29,8 @@ def param_rows(store: Store, *, campaign: str | None = None, level_min: float | 
                level_max: float | None = None, direction: str | None = None) -> list[dict]:
     """The rows of :meth:`Store.params <mapper.store.database.Store.params>` as plain dicts
     (``flags`` a list), every test included."""
-    cursor = store.connection.execute(*params_query(campaign, level_min, level_max, direction, True))
+    sql, bound = params_query(campaign, level_min, level_max, direction, True)
+    cursor = store.connection.execute(sql, bound)
     names = [d[0] for d in cursor.description or ()]
     flags = names.index("flags")
     return [{**dict(zip(names, row)), "flags": list(row[flags] or [])} for row in cursor.fetchall()]
