@@ -21,7 +21,7 @@ def demo(tmp_path_factory) -> Path:
     cwd = tmp_path_factory.mktemp("demo_cwd")
     own = cwd / "mapper.duckdb"  # the user's own store: the demo must not touch it
     own.write_bytes(b"someone's own file")
-    result = run_mapper("demo", "--out", "demo_out", cwd=cwd)
+    result = run_mapper("demo", "--out", "demo_out", "--png", cwd=cwd)
     assert result.returncode == 0, result.stderr
     assert own.read_bytes() == b"someone's own file"
     (cwd / "stdout.txt").write_text(result.stdout)

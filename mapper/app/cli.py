@@ -272,7 +272,7 @@ def report_command(
 @_guard
 def demo_command(
     out: Path = typer.Option(Path("mapper_demo"), "--out", help="folder for the demo store, report and schedule"),
-    png: bool = typer.Option(True, "--png/--no-png", help="also write the charts as PNG"),
+    png: bool = typer.Option(False, "--png/--no-png", help="also write the charts as PNG (a few seconds more)"),
 ) -> None:
     """Run the whole job on the bundled sample campaign into a fresh folder."""
     from mapper.app.jobs import run_demo

@@ -228,7 +228,7 @@ class DemoOutcome:
     lines: list[str]
 
 
-def run_demo(out_dir: Path, *, png: bool = True) -> DemoOutcome:
+def run_demo(out_dir: Path, *, png: bool = False) -> DemoOutcome:
     """The whole job on the sample campaign, into a fresh store inside ``out_dir``.
 
     Never touches any other store: the demo store lives in ``out_dir`` and is replaced on

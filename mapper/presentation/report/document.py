@@ -18,7 +18,7 @@ from mapper.presentation import charts
 from mapper.presentation.report import sections
 from mapper.presentation.report.cards import test_sort_key, tests_section
 from mapper.presentation.report.page import Page, asset, esc
-from mapper.presentation.report.vega import PngWriter, javascript_bundle, png_folder
+from mapper.presentation.report.vega import javascript_bundle, png_export
 
 
 @dataclass(frozen=True)
@@ -100,7 +100,8 @@ def write_report(path: str | Path, *, campaign: Mapping[str, Any], params: pd.Da
         generator reading the store, say) is taken in the order given, one test at a
         time, so sort it beforehand.
     png_dir : str or pathlib.Path, optional
-        When given, every chart is also written there as PNG.
+        When given, every chart is also written there as PNG, by worker processes while
+        the page is written (:mod:`mapper.presentation.png_export`).
 
     Returns
     -------
@@ -118,7 +119,7 @@ def write_report(path: str | Path, *, campaign: Mapping[str, Any], params: pd.Da
                                         key=lambda item: test_sort_key(item[0]))
     else:
         items = (charts.unpack_test(test) for test in tests)
-    pngs = None if png_dir is None else PngWriter(png_folder(png_dir))
+    pngs = None if png_dir is None else png_export(png_dir)
     part = path.with_name(f".{path.name}.{os.getpid()}-{secrets.token_hex(4)}.part")
     try:
         with open(part, "x", encoding="utf-8") as out, \
@@ -137,10 +138,22 @@ def write_report(path: str | Path, *, campaign: Mapping[str, Any], params: pd.Da
                      "</body></html>")
         os.replace(part, path)
     except OSError as exc:
+        if pngs is not None:
+            pngs.close()
         raise MapperError(f"cannot write the report to {path}: {exc}",
                           hint="check that the folder exists and is writable") from exc
+    except BaseException:
+        if pngs is not None:
+            pngs.close()
+        raise
     finally:
         part.unlink(missing_ok=True)
-    png_files = () if pngs is None else pngs.finish()
+    png_files: tuple[Path, ...] = ()
+    if pngs is not None:
+        try:
+            png_files = pngs.finish()
+        except OSError as exc:
+            raise MapperError(f"cannot write the PNG charts to {png_dir}: {exc}",
+                              hint="choose a writable folder with --png-dir") from exc
     return ReportInfo(path=path, size_bytes=path.stat().st_size, png_files=png_files,
                       n_charts=page.n_charts)

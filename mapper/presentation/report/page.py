@@ -17,7 +17,7 @@ from importlib import resources
 from typing import IO, TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
-    from mapper.presentation.report.vega import PngWriter
+    from mapper.presentation.png_export import PngExport
 
 
 @functools.lru_cache(maxsize=8)
@@ -77,7 +77,7 @@ class Page:
     needs no more memory than that of a short one.
     """
 
-    def __init__(self, sink: IO[str], pngs: PngWriter | None = None) -> None:
+    def __init__(self, sink: IO[str], pngs: PngExport | None = None) -> None:
         self.sink = sink
         self.pngs = pngs
         self.n_charts = 0
