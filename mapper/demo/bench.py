@@ -150,7 +150,7 @@ def _stage(argv: list[str]) -> None:
         analyse_store(db, out_dir=db.parent / "out")
         timings["analyse_seconds"] = time.perf_counter() - started
     if stage == "bare_scan":
-        from mapper.store.database import bare_scan
+        from mapper.store.readers import bare_scan
         files = sorted(folder.glob("*.csv"))
         started = time.perf_counter()
         bare_scan(files)

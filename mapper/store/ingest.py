@@ -25,7 +25,8 @@ import pandas as pd
 from mapper.constants import MIN_FILE_SAMPLES
 from mapper.errors import CampaignFileError, DataError, MapperError
 from mapper.store.campaign import Campaign, TestEntry, load_campaign
-from mapper.store.database import ScannedFile, Store, scan_file, scan_first_text, scan_many
+from mapper.store.database import Store
+from mapper.store.readers import ScannedFile, scan_file, scan_first_text, scan_many
 from mapper.store.segment import Signals, split_signals
 
 MAX_MAGNITUDE = 1e12
@@ -221,7 +222,7 @@ def read_signals(path: Path, time_column: str, input_column: str, output_column:
         raw_time = scanned.values[time_column]
         # with another delimiter a comma in a text time column can only be a decimal comma
         decimal_comma = (kinds[time_column].startswith("VARCHAR")
-                         and (scanned.delimiter or ",") != ",")
+                         and (scanned.sniff_delimiter() or ",") != ",")
     else:
         text = scan_file(path, columns, as_text=True)
         values = {c: _as_objects(text.values[c]) for c in columns}
@@ -229,7 +230,7 @@ def read_signals(path: Path, time_column: str, input_column: str, output_column:
         if n == 0:
             raise DataError(f"{path}: header only, no data rows", hint="export the test again")
         # look well past the first rows: an export may start on whole numbers ("50;20")
-        decimal_comma = (scanned.delimiter or ",") != "," and any(
+        decimal_comma = (scanned.sniff_delimiter() or ",") != "," and any(
             bool(_DECIMAL_COMMA.match(str(v))) for c in columns for v in values[c][:500])
         if n > 2 and _looks_like_units_row(values, (input_column, output_column), decimal_comma):
             values = {c: v[1:] for c, v in values.items()}
