@@ -40,14 +40,21 @@ def safe_json(spec: Any) -> str:
 
 
 def esc(value: Any) -> str:
-    """The value as HTML text, escaped; None as the empty string."""
+    """The value as HTML text, escaped; None as the empty string, booleans as yes / no."""
+    if isinstance(value, bool):
+        return "yes" if value else "no"
     return html.escape("" if value is None else str(value), quote=True)
 
 
 def num(value: Any, digits: int = 4) -> str:
-    """A number with ``digits`` significant digits, "–" when not finite, text otherwise."""
-    if value is None or isinstance(value, bool):
-        return esc(value)
+    """A number with ``digits`` significant digits, "–" when not finite, text otherwise.
+
+    Booleans read "yes" / "no" and None reads as nothing: no Python value reaches the page.
+    """
+    if isinstance(value, bool):
+        return "yes" if value else "no"
+    if value is None:
+        return ""
     try:
         x = float(value)
     except (TypeError, ValueError):
