@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import csv
 import json
+import re
 from pathlib import Path
 
 import duckdb
@@ -51,14 +52,39 @@ def test_demo_writes_verdict_report_and_schedule(demo):
     stdout = (demo.parent / "stdout.txt").read_text()
     assert "Verdict: schedule" in stdout
     report = (demo / "report.html").read_text()
-    assert "<svg" in report or "vega" in report.lower()
+    # one chart per test of the newest campaign plus map, schedule, margins and overlay, each
+    # specification readable JSON, and the drawing library inline (the file opens offline)
+    specs = re.findall(r'<script type="application/json" id="spec-\d+">(.*?)</script>', report, flags=re.S)
+    tests = len(list((SAMPLE / "exchanger_2026").glob("*.csv")))
+    assert len(specs) == tests + 4
+    assert all(json.loads(spec)["$schema"].startswith("https://vega.github.io/schema/vega-lite/")
+               for spec in specs)
+    assert "window.vegaEmbed" in report or "vegaEmbed=" in report
     assert NEW in report
+    # tests titled by their data files, and the campaign described
+    assert "<h3>t080_up_2.csv " in report
+    assert "the steam valve stepped open-loop, in manual" in report
     with (demo / "schedule.csv").open() as handle:
         lines = handle.read().splitlines()
     assert any("CAUTION" in line for line in lines if line.startswith("#"))
     rows = list(csv.DictReader(line for line in lines if not line.startswith("#")))
     assert len(rows) >= 2 and all(float(r["kc"]) > 0 and float(r["ti"]) > 0 for r in rows)
     assert (demo / "charts" / "operating_map.png").stat().st_size > 10_000
+    # the charts of the tests are named after their data files
+    assert (demo / "charts" / "t080_up_2.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_report_command_fills_the_record_block(demo, tmp_path):
+    out = tmp_path / "signed.html"
+    result = run_mapper("report", "--campaign", NEW, "--out", out, "--prepared-by", "R. Field",
+                        "--checked-by", "S. Lead", db=demo / "demo.duckdb")
+    assert result.returncode == 0, result.stderr
+    page = out.read_text(encoding="utf-8")
+    record = re.search(r'<section id="record">(.*?)</section>', page, flags=re.S).group(1)
+    assert "<td>R. Field</td>" in record and "<td>S. Lead</td>" in record
+    outside_scripts = re.sub(r"<(script|style)\b[^>]*>.*?</\1>", " ", page, flags=re.S)
+    assert "kc_dimensionless" not in outside_scripts and "serves_whole_range" not in outside_scripts
+    assert not re.search(r">\s*(True|False|None)\s*<", outside_scripts)
 
 
 def test_at_inside_and_outside_the_range(demo):

@@ -46,9 +46,8 @@ def _parameter(item: Mapping[str, Any]) -> str:
 
 
 def _z(item: Mapping[str, Any]) -> str:
-    z = item.get("z")
     try:
-        z = float(z)
+        z = float(item.get("z"))  # type: ignore[arg-type]  # None and text fall through
     except (TypeError, ValueError):
         return ""
     return f" ({abs(z):.1f} standard errors)" if math.isfinite(z) else ""

@@ -8,7 +8,7 @@ the page.
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from typing import Any
+from typing import Any, cast
 
 import pandas as pd
 
@@ -58,8 +58,9 @@ def record_section(page: Page, prepared_by: str | None, checked_by: str | None, 
     """Who prepared and who checked the report, with room to sign on paper."""
     rows = []
     for role, name in (("Prepared by", prepared_by), ("Checked by", checked_by)):
-        filled = bool(name and name.strip())
-        rows.append(f"<tr><th>{role}</th><td>{esc(name.strip()) if filled else ''}</td><td></td>"
+        shown = (name or "").strip()
+        filled = bool(shown)
+        rows.append(f"<tr><th>{role}</th><td>{esc(shown)}</td><td></td>"
                     f"<td>{esc(date) if filled else ''}</td></tr>")
     page.add('<section id="record"><h2>Record</h2><table class="sign"><thead><tr><th>Role</th>'
              "<th>Name</th><th>Signature</th><th>Date</th></tr></thead><tbody>" + "".join(rows)
@@ -192,7 +193,7 @@ def excluded_section(page: Page, params: pd.DataFrame | None) -> None:
              "store and shown with the other tests below.</p>")
     rows = []
     extra = [k for k in ("excluded_by", "excluded_at") if k in params.columns]
-    for rec in params[mask].to_dict("records"):
+    for rec in cast("list[dict[str, Any]]", params[mask].to_dict("records")):
         rows.append([test_name(rec), rec.get("level"), value_text(rec.get("direction")),
                      rec.get("exclusion_reason") or "", rec.get("note") or ""]
                     + [rec.get(k) for k in extra])
