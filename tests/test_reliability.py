@@ -430,22 +430,6 @@ def test_odd_files_given_as_store_are_untouched(tmp_path, small_campaign, conten
     assert foreign.read_bytes() == content
 
 
-def test_demo_never_touches_the_users_store(tmp_path, base_store):
-    work = tmp_path / "work"
-    work.mkdir()
-    own = work / "mapper.duckdb"
-    shutil.copy(base_store, own)
-    named = tmp_path / "named.duckdb"
-    shutil.copy(base_store, named)
-    before, named_before = own.read_bytes(), named.read_bytes()
-    result = run_mapper("demo", "--out", tmp_path / "demo_out", cwd=work,
-                        env={"MAPPER_DB": str(named)}, timeout=600)
-    assert result.returncode == 0, result.stdout + result.stderr
-    assert own.read_bytes() == before
-    assert named.read_bytes() == named_before
-    assert not (work / "mapper.duckdb.wal").exists()
-
-
 # -- 5. nothing from a file is executed or interpreted -------------------------------------
 def _formatted_names(node: ast.AST) -> set[str]:
     return {n.id for n in ast.walk(node) if isinstance(n, ast.Name)}

@@ -224,9 +224,13 @@ def verdict_command(
         return
     lines = [data.note] if data.note else []
     lines += [f"decision: {result['decision']}"] + [f"  - {r}" for r in result["reasons"]]
-    lines += ["", "margins of the single controller at each tested level:",
-              format_records(result["points"], "table"), "", "schedule:",
-              format_records(result["schedule"], "table")]
+    lines += ["", "single controller at each tested level (Ms; IAE and peak after a load step, ratios to local "
+              "SIMC; setpoint overshoot):", format_records(verdict.level_rows(), "table")]
+    if verdict.schedule_points and result["decision"] == "schedule":
+        lines += ["", "schedule as applied at each tested level:",
+                  format_records(verdict.level_rows(schedule=True), "table")]
+    lines += ["", "schedule:", format_records([{k: v for k, v in r.items() if k != "tested_levels"}
+                                               for r in result["schedule"]], "table")]
     if schedule_out is not None:
         lines.append(f"schedule written to {schedule_out}")
     _say(lines)

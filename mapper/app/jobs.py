@@ -202,7 +202,7 @@ def write_campaign_report(store_path, out: Path, *, campaign: str | None = None,
             summary["description"] = str(described[0]["description"])
         # tests stream from the store into the file one at a time
         info = write_report(out, campaign=summary, params=data.params, trend=opmap.trend_frame(),
-                            map_summary=opmap.summary(), verdict=verdict.to_dict(),
+                            map_summary=opmap.summary(), verdict=verdict.report_dict(),
                             comparisons=found, tests=_iter_tests(store, data.params),
                             png_dir=png_dir, prepared_by=prepared_by, checked_by=checked_by)
     return ReportOutcome(Path(info.path), info.size_bytes, tuple(info.png_files), verdict)

@@ -54,7 +54,7 @@ def png_name(row: Mapping[str, Any], taken: set[str]) -> str:
     stem = PurePath(str(row.get("file") or "")).stem or f"test_{row.get('test_id')}"
     stem = re.sub(r"[^A-Za-z0-9_.-]+", "_", stem).strip("._")[:80] or "test"
     name = stem
-    if name in taken or name in ("operating_map", "overlay", "schedule", "margins"):
+    if name in taken or name in ("operating_map", "overlay", "schedule", "margins", "closed_loop"):
         start = row.get("window_start")
         name = f"{stem}_from_{num(start)}s" if start is not None and start == start else stem
         if name in taken:

@@ -165,7 +165,11 @@ def verdict_section(page: Page, verdict: Mapping[str, Any] | None) -> None:
     points = verdict.get("points") or []
     if points:
         page.add("<h3>Single controller at each tested level</h3>")
-        page.add(rows_table(points, ["level", "ms", "gain_margin", "phase_margin_deg", "slowdown"]))
+        wanted = ["level", "ms", "gain_margin", "phase_margin_deg", "iae_ratio", "peak_ratio", "overshoot"]
+        keys = [k for k in wanted if any(k in p for p in points)]
+        if "iae_ratio" not in keys and any("slowdown" in p for p in points):
+            keys.append("slowdown")
+        page.add(rows_table(points, keys))
     page.add(cautions_box() + "</section>")
 
 
@@ -234,6 +238,10 @@ def schedule_section(page: Page, verdict: Mapping[str, Any] | None, units: Mappi
     if verdict.get("points") or verdict.get("schedule_points"):
         page.chart("margins", charts.margins_chart(verdict, units=units),
                    "Maximum sensitivity across the tested levels")
+    if verdict.get("responses"):
+        page.chart("closed_loop", charts.closed_loop_chart(verdict, units=units),
+                   "Simulated closed-loop responses (load step and setpoint step) at the lowest, middle and "
+                   "highest tested levels: single controller against the schedule and the local tuning")
     page.add(cautions_box() + "</section>")
 
 
