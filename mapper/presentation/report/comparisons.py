@@ -65,6 +65,12 @@ def _percent(value: Any) -> str:
     return f"{100 * x:+.0f} %" if math.isfinite(x) else ""
 
 
+def _p_text(p: Any) -> str:
+    if not isinstance(p, (int, float)) or isinstance(p, bool) or not math.isfinite(p):
+        return ""
+    return " (p < 0.001)" if p < 0.001 else f" (p {p:.2g})"
+
+
 def _repeat_rows(items: Sequence[Mapping[str, Any]]) -> str:
     rows = []
     for item in items:
@@ -72,7 +78,7 @@ def _repeat_rows(items: Sequence[Mapping[str, Any]]) -> str:
         spread = "consistent with the intervals" if item.get("consistent") else "wider than the intervals"
         rows.append((item.get("level"), value_text(item.get("direction")), _parameter(item),
                      item.get("n_tests"), item.get("min"), item.get("max"),
-                     spread + (f" (p {float(p):.2g})" if isinstance(p, (int, float)) else "")))
+                     spread + _p_text(p)))
     return table(["Level", "Step", "Parameter", "Tests", "Lowest", "Highest", "Significance"], rows)
 
 

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import re
+
 METHOD_NOTES: tuple[tuple[str, str], ...] = (
     ("Graphical 63.2 % method",
      "Gain is the change in output over the change in input; dead time runs from the input "
@@ -109,6 +111,12 @@ VALUE_TEXT: dict[str, str] = {
     "direct": "direct acting",
     "up": "up",
     "down": "down",
+    "constant": "constant",
+    "linear": "straight",
+    "quadratic": "quadratic",
+    "log_linear": "straight in log scale",
+    "log_quadratic": "curved in log scale",
+    "piecewise_linear": "piecewise linear through the level means",
 }
 
 
@@ -126,5 +134,9 @@ def value_text(value: object) -> object:
     if isinstance(value, bool):
         return "yes" if value else "no"
     if isinstance(value, str):
-        return VALUE_TEXT.get(value, PARAMETER_LABELS.get(value, value))
+        known = VALUE_TEXT.get(value) or PARAMETER_LABELS.get(value)
+        if known:
+            return known
+        if re.fullmatch(r"[a-z]+(_[a-z]+)+", value):  # a code this version has no words for
+            return value.replace("_", " ")
     return value
