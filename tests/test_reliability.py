@@ -460,10 +460,10 @@ def test_sql_is_never_built_from_values():
             loose = _formatted_names(first) - SQL_PIECES - {"len"}
             assert not loose, f"{source.name}:{call.lineno} puts {sorted(loose)} into SQL text"
     assert checked >= 20
-    schema = ast.parse((PACKAGE / "store" / "database.py").read_text())
+    schema = ast.parse((PACKAGE / "store" / "schema.py").read_text())
     # `statement` walks the constant schema list: every element a plain string constant
     listed = [node.value for node in ast.walk(schema) if isinstance(node, ast.Assign)
-              and any(getattr(target, "id", "") == "_SCHEMA" for target in node.targets)]
+              and any(getattr(target, "id", "") == "SCHEMA" for target in node.targets)]
     # ...or a statement generated from the column registry, whose names are plain identifiers
     generated = {"_fits_table_sql", "_view_sql"}
     assert listed and all(isinstance(e, ast.Constant) or (isinstance(e, ast.Call) and e.func.id in generated)

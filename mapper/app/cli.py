@@ -108,6 +108,9 @@ def import_command(
     campaign: str | None = typer.Option(None, "--campaign", help="campaign name for loose data files"),
     time_unit: str = typer.Option("s", "--time-unit", help="unit of a numeric time column: s, min or h"),
     period: float | None = typer.Option(None, "--period", help="grid period in seconds for irregular logs"),
+    drop_bad_rows: bool = typer.Option(False, "--drop-bad-rows",
+                                       help="drop rows with unreadable cells (counted and flagged) "
+                                            "instead of refusing the file"),
 ) -> None:
     """Bring a campaign folder or loose data files into the store."""
     from mapper.store.ingest import import_campaigns, prepare_sources
@@ -118,7 +121,8 @@ def import_command(
                                 output_column=output, level=level, campaign=campaign,
                                 time_unit=time_unit, period=period)
     with _store() as store:
-        summary = import_campaigns(store, campaigns, progress=_progress("importing"))
+        summary = import_campaigns(store, campaigns, progress=_progress("importing"),
+                                   drop_bad_rows=drop_bad_rows)
     _say(summary.lines())
     for line in summary.refusals():
         sys.stderr.write(f"mapper: {line}\n")
@@ -177,6 +181,8 @@ def map_command(
     lines += [f"operating map of '{data.name}' against {against.value} "
               f"({opmap.level_min:g} to {opmap.level_max:g})", format_records(rows, "table", kind="map"), ""]
     lines += [f"- {row['reason']}" for row in rows]
+    if opmap.influence_sentence:
+        lines += ["", opmap.influence_sentence] + [f"  - {d.sentence}" for d in opmap.depends_on]
     _say(lines)
 
 
@@ -224,6 +230,8 @@ def verdict_command(
         return
     lines = [data.note] if data.note else []
     lines += [f"decision: {result['decision']}"] + [f"  - {r}" for r in result["reasons"]]
+    if verdict.depends_on_sentence:
+        lines += [f"  - {verdict.depends_on_sentence}"] + [f"    {d['sentence']}" for d in result["depends_on"]]
     lines += ["", "single controller at each tested level (Ms; IAE and peak after a load step, ratios to local "
               "SIMC; setpoint overshoot):", format_records(verdict.level_rows(), "table")]
     if verdict.schedule_points and result["decision"] == "schedule":

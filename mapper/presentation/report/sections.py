@@ -165,11 +165,18 @@ def verdict_section(page: Page, verdict: Mapping[str, Any] | None) -> None:
     points = verdict.get("points") or []
     if points:
         page.add("<h3>Single controller at each tested level</h3>")
+        page.add('<p class="muted">IAE and peak after a load step at the plant input, as ratios to a controller '
+                 'tuned at that level (SIMC); Ms from the exact frequency response.</p>')
         wanted = ["level", "ms", "gain_margin", "phase_margin_deg", "iae_ratio", "peak_ratio", "overshoot"]
         keys = [k for k in wanted if any(k in p for p in points)]
         if "iae_ratio" not in keys and any("slowdown" in p for p in points):
             keys.append("slowdown")
         page.add(rows_table(points, keys))
+        applied = verdict.get("schedule_points") or []
+        if applied and decision == "schedule":
+            page.add("<h3>Schedule as applied at each tested level</h3>")
+            page.add(rows_table(applied, [k for k in ["level", "kc", "ti", *keys[1:]]
+                                          if any(k in p for p in applied)]))
     page.add(cautions_box() + "</section>")
 
 

@@ -68,7 +68,7 @@ MODEL_LABELS: dict[str, str] = {
 DECISION_TEXT: dict[str, str] = {
     "single": "One controller serves the whole tested range.",
     "schedule": "A gain schedule is needed across the tested range.",
-    "insufficient": "The tests do not yet support a decision: more levels need testing.",
+    "insufficient": "Not enough tests to judge: no controller or schedule is handed over.",
 }
 
 #: Order and wording of known keys of a verdict's controller, schedule rows and points.
