@@ -116,6 +116,7 @@ def assess(
     input_range=None,
     output_range=None,
     period: float | None = None,
+    start_state: bool = False,
 ) -> list[str]:
     """Checks of a step test against the rules of thumb of the trade.
 
@@ -138,6 +139,9 @@ def assess(
         Instrument ranges for the clipping checks.
     period : float, optional
         Sample period (s); default the median spacing of ``t``.
+    start_state : bool, default False
+        The fit estimated the starting state: drift before the step is then judged on
+        the residuals (what the starting free response does not explain).
 
     Returns
     -------
@@ -160,8 +164,9 @@ def assess(
     i0 = step.index
     # drift before the step: slope of a straight line through the baseline
     if i0 >= 2 * MIN_BASELINE_SAMPLES and abs(response) > 0:
+        base = residuals if start_state and residuals is not None else y
         tb = t[:i0] - t[:i0].mean()
-        yb = y[:i0] - y[:i0].mean()
+        yb = base[:i0] - base[:i0].mean()
         stt = float(tb @ tb)
         slope = float(tb @ yb) / stt
         resid = yb - slope * tb

@@ -323,10 +323,11 @@ class Store:
                 con.unregister("incoming_fits")
 
     def fit_inputs(self, test_ids: Sequence[int]) -> dict[int, dict]:
-        """Instrument ranges and where the window's own move starts, per test, in one query.
+        """Instrument ranges, import flags and where the window's own move starts, per test,
+        in one query.
 
         Keys: ``input_range_low``, ``input_range_high``, ``output_range_low``,
-        ``output_range_high``, ``move_start_index`` and ``move_start_time`` (s from the
+        ``output_range_high``, ``import_flags``, ``move_start_index`` and ``move_start_time`` (s from the
         window start; both None for explicit windows and stores imported before they
         were kept).
         """
@@ -334,10 +335,10 @@ class Store:
                       else "NULL, NULL")  # a read-only store from an earlier mapper
         rows = self.connection.execute(
             "SELECT t.test_id, c.input_range_low, c.input_range_high, c.output_range_low, "
-            "c.output_range_high, " + column_sql + " FROM tests t JOIN campaigns c USING (campaign_id) "
+            "c.output_range_high, t.import_flags, " + column_sql + " FROM tests t JOIN campaigns c USING (campaign_id) "
             "WHERE t.test_id IN (SELECT unnest(?::INTEGER[]))", [list(map(int, test_ids))]).fetchall()
         keys = ("input_range_low", "input_range_high", "output_range_low", "output_range_high",
-                "move_start_index", "move_start_time")
+                "import_flags", "move_start_index", "move_start_time")
         return {int(r[0]): dict(zip(keys, r[1:])) for r in rows}
 
     def _has_column(self, table: str, column: str) -> bool:
