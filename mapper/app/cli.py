@@ -271,11 +271,16 @@ def report_command(
     compare_with: str | None = typer.Option(None, "--compare-with", help="an older campaign to compare against"),
     ms_max: float = typer.Option(2.0, "--ms-max"),
     slowdown_max: float = typer.Option(2.0, "--slowdown-max"),
+    prepared_by: str | None = typer.Option(None, "--prepared-by", metavar="NAME",
+                                           help="name for the record block (blank to sign on paper)"),
+    checked_by: str | None = typer.Option(None, "--checked-by", metavar="NAME",
+                                          help="name for the record block (blank to sign on paper)"),
 ) -> None:
     """Write the self-contained HTML report (opens offline)."""
     from mapper.app.jobs import write_campaign_report
     outcome = write_campaign_report(_state["db"], out, campaign=campaign, png_dir=png_dir, ms_max=ms_max,
-                                    slowdown_max=slowdown_max, compare_with=compare_with)
+                                    slowdown_max=slowdown_max, compare_with=compare_with,
+                                    prepared_by=prepared_by, checked_by=checked_by)
     lines = [f"report written to {outcome.path} ({outcome.size_bytes / 1e6:.2f} MB)"]
     if outcome.png_files:
         lines.append(f"{len(outcome.png_files)} PNG charts in {png_dir}")
@@ -286,7 +291,7 @@ def report_command(
 @_guard
 def demo_command(
     out: Path = typer.Option(Path("mapper_demo"), "--out", help="folder for the demo store, report and schedule"),
-    png: bool = typer.Option(True, "--png/--no-png", help="also write the charts as PNG"),
+    png: bool = typer.Option(False, "--png/--no-png", help="also write the charts as PNG (a few seconds more)"),
 ) -> None:
     """Run the whole job on the bundled sample campaign into a fresh folder."""
     from mapper.app.jobs import run_demo

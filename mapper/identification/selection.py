@@ -33,7 +33,8 @@ BASELINE_TREND_SDS = 3.0  # a baseline slope beyond 3 of its sd is a moving star
 # AIC difference taken as clear support for one model over another (Burnham & Anderson, 2002,
 # sec. 2.6: differences over about 4-7 mean considerably less support for the worse model)
 DRIFT_EVIDENCE = 4.0
-INTEGRATING_EVIDENCE = 4.0  # same scale, for the integrating model over a bending first order
+INTEGRATING_EVIDENCE = 4.0
+START_EVIDENCE = 4.0  # same scale, for a moving start over a start from rest  # same scale, for the integrating model over a bending first order
 # a first-order response with a time constant up to 3 record lengths still bends visibly over
 # the record (its slope falls to exp(-1/3) = 72 %); a straight ramp beyond that is an integrator
 BENDING_RECORDS = 3.0
@@ -121,7 +122,10 @@ def choose_least_squares(
                      and abs(line.estimate.start_state) > DRIFT_FRACTION * size)
         if moving is not None:
             delta = aic(moving, c) - aic(rest, c)
-            if history > 0 or delta < 0.0:
+            # without a known earlier move, the start must clearly be moving and look like a
+            # decay: a straight drift fitting as well is wander, not a starting state
+            decays = line is None or aic(moving, c) <= aic(line, c)
+            if history > 0 or (delta < -START_EVIDENCE and decays):
                 fit, from_state = moving, True
                 reason = "the input moved just before the window" if history > 0 else "the baseline still moved"
                 why = f"starting state estimated ({reason}; AIC change {delta:+.1f} against a start from rest)"
