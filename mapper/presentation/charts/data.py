@@ -158,7 +158,7 @@ def unpack_test(test: Any) -> tuple[dict, np.ndarray, np.ndarray, np.ndarray, An
 def map_points(params: pd.DataFrame | None) -> list[dict]:
     """Long rows ``test_id, level, direction, quality, parameter, value, lo, hi``.
 
-    Rejected tests and tests without a level are left out; gain over time constant gets
+    Rejected and excluded tests and tests without a level are left out; gain over time constant gets
     an interval from the ends of the two intervals (conservative: it ignores the
     correlation of gain and time constant).
     """
@@ -166,7 +166,7 @@ def map_points(params: pd.DataFrame | None) -> list[dict]:
     if params is None or len(params) == 0:
         return rows
     for rec in params.to_dict("records"):
-        if rec.get("quality") == "rejected":
+        if rec.get("quality") == "rejected" or rec.get("excluded") is True:
             continue
         base = {
             "test_id": text(rec.get("test_id")),
