@@ -188,9 +188,11 @@ class ReportOutcome:
 def write_campaign_report(store_path, out: Path, *, campaign: str | None = None,
                           png_dir: Path | None = None, ms_max: float = 2.0,
                           slowdown_max: float = 2.0, compare_with: str | None = None,
-                          schedule_out: Path | None = None) -> ReportOutcome:
+                          schedule_out: Path | None = None, prepared_by: str | None = None,
+                          checked_by: str | None = None) -> ReportOutcome:
     """The self-contained HTML report of a campaign (and PNG charts when ``png_dir``; the
-    schedule CSV too when ``schedule_out``)."""
+    schedule CSV too when ``schedule_out``); ``prepared_by`` and ``checked_by`` fill the
+    record block."""
     from mapper.presentation.report import write_report
     data, verdict = verdict_for(store_path, campaign=campaign, ms_max=ms_max, slowdown_max=slowdown_max,
                                 schedule_out=schedule_out)
@@ -204,11 +206,14 @@ def write_campaign_report(store_path, out: Path, *, campaign: str | None = None,
     if data.note:
         summary["note"] = data.note
     with Store(store_path, read_only=True) as store:
+        described = store.campaign_info(data.name)
+        if described and described[0].get("description"):
+            summary["description"] = str(described[0]["description"])
         # tests stream from the store into the file one at a time
         info = write_report(out, campaign=summary, params=data.params, trend=opmap.trend_frame(),
                             map_summary=opmap.summary(), verdict=verdict.report_dict(),
                             comparisons=found, tests=_iter_tests(store, data.params),
-                            png_dir=png_dir)
+                            png_dir=png_dir, prepared_by=prepared_by, checked_by=checked_by)
     return ReportOutcome(Path(info.path), info.size_bytes, tuple(info.png_files), verdict)
 
 
@@ -237,7 +242,7 @@ class DemoOutcome:
     lines: list[str]
 
 
-def run_demo(out_dir: Path, *, png: bool = True) -> DemoOutcome:
+def run_demo(out_dir: Path, *, png: bool = False) -> DemoOutcome:
     """The whole job on the sample campaign, into a fresh store inside ``out_dir``.
 
     Never touches any other store: the demo store lives in ``out_dir`` and is replaced on
