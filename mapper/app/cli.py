@@ -19,6 +19,7 @@ from mapper.errors import MapperError
 from mapper.presentation.output import format_object, format_records, plain
 
 app = typer.Typer(add_completion=False, no_args_is_help=True, pretty_exceptions_show_locals=False,
+                  rich_markup_mode=None,  # plain help: loading rich costs more than the rest of start-up
                   pretty_exceptions_enable=False,
                   help="Step-test campaigns to FOPDT models, an operating map and a "
                        "single-controller-or-schedule verdict.")
@@ -157,10 +158,11 @@ def params_command(
     format: Format = FormatOption,
 ) -> None:
     """One row per test: level, direction, gain, time constant, dead time with 95 % intervals."""
+    from mapper.store.queries import param_rows  # plain rows: no pandas to load
     with _store(read_only=True) as store:
-        frame = store.params(campaign=campaign, level_min=level_min, level_max=level_max,
-                             direction=direction.value if direction else None)
-    typer.echo(format_records(frame.to_dict("records"), format.value, kind="params"))
+        rows = param_rows(store, campaign=campaign, level_min=level_min, level_max=level_max,
+                          direction=direction.value if direction else None)
+    typer.echo(format_records(rows, format.value, kind="params"))
 
 
 @app.command("map")

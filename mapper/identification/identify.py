@@ -21,6 +21,7 @@ from mapper.columns import FIT_VALUE_NAMES, column
 from mapper.constants import MIN_AFTER_STEP_SAMPLES, MIN_BASELINE_SAMPLES, MIN_FIT_SAMPLES
 from mapper.errors import DataError, IdentificationError
 from mapper.identification import estimators as est
+from mapper.identification.disturbance import disturbance_flags
 from mapper.identification.flags import flag_text, grade
 from mapper.identification.models import simulate_fopdt, simulate_integrating
 from mapper.identification.quality import (
@@ -31,7 +32,6 @@ from mapper.identification.quality import (
     noise_sd,
     standard_deviation,
 )
-from mapper.identification.disturbance import disturbance_flags
 from mapper.identification.selection import choose_least_squares
 from mapper.identification.uncertainty import disturbance_covariance
 
@@ -353,7 +353,6 @@ def _identify_step(
 ):
     period = settings["period"]
     v_all = np.concatenate((history, u)) - step.u_before
-    v = v_all[history.size :]
     notes: list[str] = []
     shape = est.step_shape(t, y, step, noise_sd(y))
     start = est.smith(shape, step)

@@ -33,8 +33,8 @@ BASELINE_TREND_SDS = 3.0  # a baseline slope beyond 3 of its sd is a moving star
 # AIC difference taken as clear support for one model over another (Burnham & Anderson, 2002,
 # sec. 2.6: differences over about 4-7 mean considerably less support for the worse model)
 DRIFT_EVIDENCE = 4.0
-INTEGRATING_EVIDENCE = 4.0
-START_EVIDENCE = 4.0  # same scale, for a moving start over a start from rest  # same scale, for the integrating model over a bending first order
+INTEGRATING_EVIDENCE = 4.0  # same scale, for the integrating model over a bending first order
+START_EVIDENCE = 4.0  # same scale, for a moving start over a start from rest
 # a first-order response with a time constant up to 3 record lengths still bends visibly over
 # the record (its slope falls to exp(-1/3) = 72 %); a straight ramp beyond that is an integrator
 BENDING_RECORDS = 3.0
@@ -99,8 +99,8 @@ def choose_least_squares(
     """Fit from rest and, where the start was moving, with the starting state; then FOPDT
     against integrating. ``v`` holds ``history`` samples of preceding input before the window."""
     v_window = v[history:]
-    single = step.n_moves == 1 and start.time_constant
-    guess = (float(start.time_constant), float(start.dead_time)) if single else None
+    tau = start.time_constant
+    guess = (float(tau), float(start.dead_time)) if step.n_moves == 1 and tau else None
     rest = est.least_squares_fopdt(period, v_window, y, step.index, guess)
     if rest is None:
         return None
