@@ -162,3 +162,33 @@ def test_a_level_loop_is_still_recognised_as_integrating():
         assert r.model == "integrating", (w.move, r.model_evidence)
         assert r.gain == pytest.approx(1.0 / 50.0, rel=0.02)
         assert r.model_evidence.startswith("integrating")
+
+
+def _gridded(plant, times, levels, end, x0=None, seed=3, noise=0.05):
+    rng = np.random.default_rng(seed)
+    td, ud, yd = simulate(plant, times, levels, end, x0=x0)
+    ts, us, ys = by_exception(td, ud, yd, noise, rng, dead_band=noise, max_interval=10.0, period=1.0)
+    t, u, y, _, _ = uniform_grid(ts - ts[0], us, ys, 1.0)
+    return t, u, y, list(np.flatnonzero(np.diff(u)) + 1)
+
+
+def test_whole_record_fit_and_the_test_of_nonlinearity():
+    from mapper.identification.record import fit_record
+
+    # linear plant: one model explains the record, and the local models agree
+    plant = LinearPlant("linear", dead_time=5.0, gain=2.0, time_constant=40.0)
+    times = np.array([150.0, 200.0, 250.0, 300.0, 350.0, 400.0])
+    levels = np.array([20.0, 23.0, 19.0, 22.0, 18.0, 21.0, 24.0])
+    t, u, y, starts = _gridded(plant, times, levels, 460.0)
+    linear = fit_record(t, u, y, starts)
+    assert len(linear.local) == len(times)
+    assert linear.whole.gain == pytest.approx(2.0, rel=0.03)
+    assert linear.whole.time_constant == pytest.approx(40.0, rel=0.05)
+    assert not linear.differ, linear.p_value
+    # tank over a wide range of levels (K and tau grow as sqrt(h)): the local models differ
+    tank = Tank("tank", dead_time=5.0, area=10.0, c=2.0)
+    times = np.array([300.0, 500.0, 700.0, 900.0])
+    levels = np.array([10.0, 14.0, 18.0, 13.0, 8.0])
+    t, u, y, starts = _gridded(tank, times, levels, 1100.0, noise=0.02)
+    nonlinear = fit_record(t, u, y, starts)
+    assert nonlinear.differ, nonlinear.p_value

@@ -29,7 +29,7 @@ from mapper.constants import (
     CLIP_SPAN_FRACTION,
     DRIFT_FRACTION,
     MIN_BASELINE_SAMPLES,
-    MIN_RESPONSE_NOISE_BANDS,
+    MIN_RESPONSE_SIGNAL_TO_NOISE,
     MIN_SAMPLES_PER_TIME_CONSTANT,
     MISFIT_FRACTION,
     NOISE_BAND_SDS,
@@ -152,7 +152,7 @@ def assess(
     -----
     All limits are common practice, not published rules: settled means the record
     runs past dead time + 4 time constants after the step; the response should be at
-    least 5 noise bands (a band is 4 sd of the residual); at least 10 samples per
+    least 5 residual sd (signal-to-noise ratio 5); at least 10 samples per
     time constant; pre-step drift carried over the test under 10 % of the response.
     """
     flags: list[str] = []
@@ -181,7 +181,7 @@ def assess(
         flags.append("input_clipped")
     if _at_limit(y, output_range) or _flat_topped(y):
         flags.append("output_clipped")
-    if band > 0 and abs(response) < MIN_RESPONSE_NOISE_BANDS * band:
+    if sigma > 0 and abs(response) < MIN_RESPONSE_SIGNAL_TO_NOISE * sigma:
         flags.append("small_response")
     if step.n_moves > 1:
         flags.append("multiple_input_moves")
