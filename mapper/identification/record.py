@@ -113,7 +113,8 @@ def fit_record(
             return float((math.log(hi / lo) if log else hi - lo) / (2.0 * Z95))
         # on the gains: the time constants are correlated with them within each move, and
         # the intervals do not carry that correlation, so adding both would overstate it
-        statistic, dof = homogeneity_test([r.gain for r in usable], [sd(r, "gain", False) for r in usable])
+        gains = [float(r.gain) for r in usable if r.gain is not None]
+        statistic, dof = homogeneity_test(gains, [sd(r, "gain", False) for r in usable])
         p_value = float(gammaincc(dof / 2.0, statistic / 2.0))
     return RecordFit(_whole(t, u, y, starts, usable), tuple(local), statistic, dof, p_value,
                      bool(dof > 0 and p_value < SIGNIFICANCE))
