@@ -104,7 +104,7 @@ def fit_record(
     for i, _ in enumerate(starts):
         lo, hi = bounds[i], bounds[i + 2]
         local.append(identify(t[lo:hi], u[lo:hi], y[lo:hi], preceding=(t[:lo], u[:lo])))
-    usable = [r for r in local if r.model == "fopdt" and r.gain is not None and r.gain_lo is not None
+    usable = [r for r in local if r.model == "fopdt" and r.gain_lo is not None
               and r.time_constant_lo is not None and r.quality != "rejected"]
     statistic, dof, p_value = 0.0, 0, 1.0
     if len(usable) >= 2:
@@ -113,7 +113,7 @@ def fit_record(
             return float((math.log(hi / lo) if log else hi - lo) / (2.0 * Z95))
         # on the gains: the time constants are correlated with them within each move, and
         # the intervals do not carry that correlation, so adding both would overstate it
-        gains = [float(r.gain) for r in usable if r.gain is not None]  # all of them: filtered above
+        gains = [float(r.gain) for r in usable if r.gain is not None]
         statistic, dof = homogeneity_test(gains, [sd(r, "gain", False) for r in usable])
         p_value = float(gammaincc(dof / 2.0, statistic / 2.0))
     return RecordFit(_whole(t, u, y, starts, usable), tuple(local), statistic, dof, p_value,
