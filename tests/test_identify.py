@@ -334,3 +334,15 @@ def test_bad_arguments_raise_actionable_errors():
         identify(t, t, t, method="eyeball")
     with pytest.raises(DataError, match="one length"):
         identify(t, t[:-1], t)
+
+
+def test_fit_result_round_trips_through_its_row():
+    t, u, y, _ = fopdt_test(2.0, 10.0, 3.0, noise=0.01, rng=np.random.default_rng(3))
+    r = identify(t, u, y)
+    row = r.to_row()
+    assert {"offset", "input_before", "start_state"} <= set(row)
+    back = FitResult.from_row(row)
+    assert back == r
+    np.testing.assert_allclose(back.fitted(t, u), r.fitted(t, u))
+    with pytest.raises(TypeError):  # wide record: no positional construction
+        FitResult("fopdt", "least_squares", 1.0)  # type: ignore[misc]

@@ -7,7 +7,8 @@ import pytest
 
 from mapper.identification.identify import identify
 from mapper.identification.models import simulate_fopdt
-from mapper.identification.quality import find_step, grade, noise_sd
+from mapper.identification.flags import grade
+from mapper.identification.quality import find_step, noise_sd
 
 
 def plant(u, T=1.0, K=2.0, tau=20.0, theta=4.0, y0=30.0):
@@ -118,3 +119,26 @@ def test_grade():
     assert grade([]) == "good"
     assert grade(["not_settled"]) == "suspect"
     assert grade(["not_settled", "no_input_step"]) == "rejected"
+
+
+def test_flag_registry_holds_every_flag_once_with_text_and_effect():
+    from mapper.identification.flags import FLAGS, INFORMS, REJECTS, SUSPECT
+
+    for name, flag in FLAGS.items():
+        assert flag.name == name and flag.text.endswith(".") and flag.effect in (REJECTS, SUSPECT, INFORMS)
+    # import flags feed the grade (issue 13 item 5); one name per condition
+    assert grade(["compressed_gaps"]) == "suspect"
+    assert grade(["resampled_to_uniform_grid"]) == "good"
+    assert "several_input_moves" not in FLAGS
+    assert grade(["next_move_before_settled"]) == "suspect"
+    assert grade(["next_move_before_settled"], start_state=True) == "good"
+    assert grade(["some_future_flag"]) == "suspect"  # unknown flags are not silently good
+
+
+def test_import_flags_feed_the_grade_but_stay_out_of_fit_flags():
+    u = np.where(T_AXIS >= 20, 1.0, 0.0)
+    y = 2.0 * (1 - np.exp(-np.clip(T_AXIS - 20, 0, None) / 25.0))
+    clean = identify(T_AXIS, u, y)
+    gappy = identify(T_AXIS, u, y, import_flags=("compressed_gaps",))
+    assert clean.quality == "good" and gappy.quality == "suspect"
+    assert "compressed_gaps" not in gappy.flags and any("gaps" in n for n in gappy.notes)

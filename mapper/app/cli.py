@@ -13,7 +13,7 @@ import functools
 import json
 import os
 import sys
-from enum import Enum
+from enum import StrEnum
 from pathlib import Path
 
 import typer
@@ -27,6 +27,10 @@ from mapper.presentation.output import format_object, format_records, plain
 BROKEN_PIPE_STATUS = 128 + 13  # killed by SIGPIPE, as the shell reports it (common practice)
 
 
+def _no_type(ctx) -> None:
+    return None
+
+
 class _Command(TyperCommand):
     """Help a person reads: arguments shown by their metavar alone, without a Python type."""
 
@@ -36,8 +40,8 @@ class _Command(TyperCommand):
             if isinstance(param, TyperArgument):
                 name = param.metavar or (param.name or "").upper()
                 shown = name if param.required else f"[{name}]"
-                setattr(param, "display_type_rich", lambda ctx: None)
-                setattr(param, "_usage_display_name", lambda shown=shown: shown)
+                param.display_type_rich = _no_type  # type: ignore[method-assign]
+                param._usage_display_name = functools.partial(str, shown)  # type: ignore[method-assign]
 
 
 app = typer.Typer(add_completion=False, no_args_is_help=True, pretty_exceptions_enable=False,
@@ -48,23 +52,23 @@ command = functools.partial(app.command, cls=_Command)
 _state: dict = {"db": None, "debug": False, "quiet": False}
 
 
-class Format(str, Enum):
+class Format(StrEnum):
     table = "table"
     csv = "csv"
     json = "json"
 
 
-class Against(str, Enum):
+class Against(StrEnum):
     level = "level"
     input = "input"
 
 
-class Direction(str, Enum):
+class Direction(StrEnum):
     up = "up"
     down = "down"
 
 
-class Method(str, Enum):
+class Method(StrEnum):
     least_squares = "least_squares"
     graphical = "graphical"
     smith = "smith"
@@ -72,12 +76,12 @@ class Method(str, Enum):
     area = "area"
 
 
-class Rule(str, Enum):
+class Rule(StrEnum):
     simc = "simc"
     lambda_ = "lambda"
 
 
-class TimeUnit(str, Enum):
+class TimeUnit(StrEnum):
     s = "s"
     min = "min"
     h = "h"
@@ -172,15 +176,20 @@ def import_command(
     sources: list[Path] = typer.Argument(..., metavar="SOURCE...",
                                          help="campaign folders (with campaign.toml) or data files"),
     time: str | None = typer.Option(None, "--time", metavar="COLUMN", help="time column of loose data files"),
-    input: str | None = typer.Option(None, "--input", metavar="COLUMN", help="input (stepped) column of loose data files"),
-    output: str | None = typer.Option(None, "--output", metavar="COLUMN", help="output (response) column of loose data files"),
+    input: str | None = typer.Option(None, "--input", metavar="COLUMN",
+                                     help="input (stepped) column of loose data files"),
+    output: str | None = typer.Option(None, "--output", metavar="COLUMN",
+                                      help="output (response) column of loose data files"),
     level: float | None = typer.Option(None, "--level", metavar="LEVEL", help="operating level of loose data files"),
     campaign: str | None = typer.Option(None, "--campaign", metavar="NAME", help="campaign name for loose data files"),
-    description: str | None = typer.Option(None, "--description", metavar="TEXT", help="campaign description for loose data files"),
+    description: str | None = typer.Option(None, "--description", metavar="TEXT",
+                                           help="campaign description for loose data files"),
     input_unit: str | None = typer.Option(None, "--input-unit", metavar="UNIT", help="unit of the input, e.g. %"),
     output_unit: str | None = typer.Option(None, "--output-unit", metavar="UNIT", help="unit of the output, e.g. degC"),
-    input_range: tuple[float, float] | None = typer.Option(None, "--input-range", metavar="LOW HIGH", help="instrument range of the input"),
-    output_range: tuple[float, float] | None = typer.Option(None, "--output-range", metavar="LOW HIGH", help="instrument range of the output"),
+    input_range: tuple[float, float] | None = typer.Option(None, "--input-range", metavar="LOW HIGH",
+                                                           help="instrument range of the input"),
+    output_range: tuple[float, float] | None = typer.Option(None, "--output-range", metavar="LOW HIGH",
+                                                            help="instrument range of the output"),
     time_unit: TimeUnit = typer.Option(TimeUnit.s, "--time-unit", help="unit of a numeric time column"),
     period: float | None = typer.Option(None, "--period", metavar="SECONDS", help="grid period for irregular logs"),
 ) -> None:
@@ -250,7 +259,7 @@ def params_command(
             frame = frame[frame["level"] <= level_max]
         if direction is not None:
             frame = frame[frame["direction"] == direction.value]
-    rows = frame.to_dict("records")
+    rows: list[dict] = frame.to_dict("records")
     units = data.parameter_units
     if format is Format.json:
         rows = [dict(row, units=units) for row in rows]
@@ -293,7 +302,8 @@ def map_command(
 def at_command(
     level: float = typer.Argument(..., metavar="LEVEL", help="operating level (output units)"),
     campaign: str | None = _campaign_option(),
-    extrapolate: bool = typer.Option(False, "--extrapolate", help="allow a level outside the tested range (with a warning)"),
+    extrapolate: bool = typer.Option(False, "--extrapolate",
+                                     help="allow a level outside the tested range (with a warning)"),
     against: Against = typer.Option(Against.level, "--against", help="LEVEL is an output level or an input value"),
     format: Format = _format_option(),
 ) -> None:
@@ -317,10 +327,13 @@ def at_command(
 def verdict_command(
     campaign: str | None = _campaign_option(),
     ms_max: float = typer.Option(2.0, "--ms-max", metavar="MS", help="largest acceptable maximum sensitivity Ms"),
-    slowdown_max: float = typer.Option(2.0, "--slowdown-max", metavar="FACTOR", help="largest acceptable slowdown against local tuning"),
-    closed_loop_time: float | None = typer.Option(None, "--closed-loop-time", metavar="SECONDS", help="SIMC tau_c (default: the dead time)"),
+    slowdown_max: float = typer.Option(2.0, "--slowdown-max", metavar="FACTOR",
+                                       help="largest acceptable slowdown against local tuning"),
+    closed_loop_time: float | None = typer.Option(None, "--closed-loop-time", metavar="SECONDS",
+                                                  help="SIMC tau_c (default: the dead time)"),
     rule: Rule = typer.Option(Rule.simc, "--rule", help="local tuning rule"),
-    schedule_out: Path | None = typer.Option(None, "--schedule-out", metavar="FILE", help="write the schedule table as CSV"),
+    schedule_out: Path | None = typer.Option(None, "--schedule-out", metavar="FILE",
+                                             help="write the schedule table as CSV"),
     format: Format = _format_option(),
 ) -> None:
     """Single model and controller, or a gain schedule: with reasons, margins and the table."""
@@ -368,7 +381,8 @@ def report_command(
     out: Path = typer.Option(Path("report.html"), "--out", metavar="FILE", help="HTML file to write"),
     png_dir: Path | None = typer.Option(None, "--png-dir", metavar="FOLDER", help="also write each chart as PNG here"),
     campaign: str | None = _campaign_option("campaign to report"),
-    compare_with: str | None = typer.Option(None, "--compare-with", metavar="NAME", help="an older campaign to compare against"),
+    compare_with: str | None = typer.Option(None, "--compare-with", metavar="NAME",
+                                            help="an older campaign to compare against"),
     ms_max: float = typer.Option(2.0, "--ms-max", metavar="MS"),
     slowdown_max: float = typer.Option(2.0, "--slowdown-max", metavar="FACTOR"),
 ) -> None:
@@ -389,7 +403,8 @@ def report_command(
 @command("demo")
 @_guard
 def demo_command(
-    out: Path = typer.Option(Path("mapper_demo"), "--out", metavar="FOLDER", help="folder for the demo store, report and schedule"),
+    out: Path = typer.Option(Path("mapper_demo"), "--out", metavar="FOLDER",
+                             help="folder for the demo store, report and schedule"),
     png: bool = typer.Option(True, "--png/--no-png", help="also write the charts as PNG"),
 ) -> None:
     """Run the whole job on the bundled sample campaign into a fresh folder."""
@@ -402,7 +417,8 @@ def demo_command(
 def bench_command(
     tests: int = typer.Option(100, "--tests", metavar="N", min=2, help="tests in the synthetic campaign"),
     samples: int = typer.Option(600, "--samples", metavar="N", min=50, help="samples per test"),
-    scale: int = typer.Option(10, "--scale", metavar="FACTOR", min=2, help="the end-to-end run is repeated at this many times the tests"),
+    scale: int = typer.Option(10, "--scale", metavar="FACTOR", min=2,
+                              help="the end-to-end run is repeated at this many times the tests"),
     json_out: Path | None = typer.Option(None, "--json", metavar="FILE", help="also write the figures as JSON"),
 ) -> None:
     """Speed and memory against the plain alternatives, measured side by side in one run."""

@@ -7,7 +7,6 @@ comparisons are built once (the session caches them).
 
 from __future__ import annotations
 
-import json
 import shutil
 import time
 from collections.abc import Callable, Iterator
@@ -22,7 +21,7 @@ from mapper.analysis.opmap import OperatingMap
 from mapper.analysis.verdict import Verdict
 from mapper.app.session import AGAINST, CampaignData, Session, campaign_data
 from mapper.errors import NotFoundError
-from mapper.identification.models import simulate_fopdt, simulate_integrating
+from mapper.identification.identify import FitResult
 from mapper.store.database import Store
 
 __all__ = ["AGAINST", "CampaignData", "SAFETY_NOTE", "Session", "analyse_store", "compare_two",
@@ -54,7 +53,8 @@ def reading(source) -> Iterator[Session]:
         yield session
 
 
-def operating_map(store_path, *, campaign: str | None = None, against: str = "level") -> tuple[CampaignData, OperatingMap]:
+def operating_map(store_path, *, campaign: str | None = None,
+                  against: str = "level") -> tuple[CampaignData, OperatingMap]:
     """The operating map of a campaign (trends of gain, time constant, dead time, K/tau).
 
     ``against="level"`` maps against the operating level in output units (the brief's
@@ -98,21 +98,10 @@ def compare_two(store_path, first: str, second: str) -> list[dict]:
 
 
 def _fitted_curve(fit: dict | None, t: np.ndarray, u: np.ndarray) -> np.ndarray | None:
-    if not fit or fit.get("model") not in ("fopdt", "integrating"):
+    if not fit or fit.get("model") not in ("fopdt", "integrating") or len(t) < 2:
         return None
-    settings = json.loads(fit.get("settings") or "{}")
-    offset = settings.get("offset", fit.get("y_before"))
-    u0 = settings.get("input_before", float(u[0]))
-    gain, dead_time = _finite(fit.get("gain")), _finite(fit.get("dead_time"))
-    if offset is None or gain is None or dead_time is None or len(t) < 2:
-        return None
-    period = float(np.median(np.diff(t)))
-    if fit["model"] == "integrating":
-        return simulate_integrating(u, period, gain, dead_time, u0=u0, y0=offset)
-    time_constant = _finite(fit.get("time_constant"))
-    if time_constant is None:
-        return None
-    return simulate_fopdt(u, period, gain, time_constant, dead_time, u0=u0, y0=offset)
+    curve = FitResult.from_row(fit).fitted(t, u)
+    return curve if np.isfinite(curve).any() else None
 
 
 def _iter_tests(store: Store, params: pd.DataFrame, *, batch: int = 32):

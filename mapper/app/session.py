@@ -197,7 +197,8 @@ class Session:
         return data
 
     # -- what is built from a campaign -----------------------------------------------------
-    def operating_map(self, name: str | None = None, *, against: str = "level") -> tuple[CampaignData, OperatingMap]:
+    def operating_map(self, name: str | None = None, *,
+                      against: str = "level") -> tuple[CampaignData, OperatingMap]:
         """The operating map of a campaign's included tests (built once per session)."""
         if against not in AGAINST:
             raise MapperError(f"cannot map against '{against}'", hint="use level or input")

@@ -10,12 +10,13 @@ import getpass
 import os
 from collections.abc import Sequence
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
 from mapper.app.session import Session, parameter_units
 from mapper.errors import NotFoundError, UsageError
-from mapper.identification.quality import FLAG_TEXT, REJECTING_FLAGS
+from mapper.identification.flags import INFORMS, REJECTS, effect, flag_text
 from mapper.presentation.textplot import sparkline_rows
 from mapper.store.campaign import Campaign
 
@@ -45,7 +46,7 @@ def with_loose_details(campaigns: Sequence[Campaign], *, description: str | None
     UsageError
         Such details were given but no loose data file was named.
     """
-    details = {key: value for key, value in (
+    details: dict[str, Any] = {key: value for key, value in (
         ("description", description), ("input_unit", input_unit), ("output_unit", output_unit),
         ("input_range", tuple(input_range) if input_range else None),
         ("output_range", tuple(output_range) if output_range else None)) if value is not None}
@@ -115,16 +116,20 @@ def _number(value, unit: str = "", interval=None) -> str:
     return f"{text} {unit}".rstrip() if "(" not in text else text.replace("  (", f" {unit}  (", 1)
 
 
+_EFFECT_WORDS = {REJECTS: "rejects the test", INFORMS: "for information"}
+
+
 def grade_reason(quality, flags: Sequence[str]) -> str:
-    """Why a test got its grade, in words."""
-    if quality is None or (isinstance(quality, float) and np.isnan(quality)):
+    """Why a test got its grade, in words (the flags that decided it)."""
+    if not isinstance(quality, str):
         return "not fitted yet (run 'mapper fit')"
-    rejecting = [f for f in flags if f in REJECTING_FLAGS]
+    rejecting = [f for f in flags if effect(f) == REJECTS]
+    doubtful = [f for f in flags if effect(f) not in (REJECTS, INFORMS)]
     if quality == "rejected":
         return f"rejected: {', '.join(rejecting) or 'no usable model'} makes the test unusable"
     if quality == "suspect":
-        return f"suspect: flagged {', '.join(flags)}; use with care"
-    return "good: no flag raised"
+        return f"suspect: {', '.join(doubtful or flags)} raised; use with care"
+    return "good: no flag against the test" + (" (flags for information only)" if flags else "")
 
 
 def show_test(session: Session, test_id: int, *, png: Path | None = None) -> list[str]:
@@ -161,7 +166,8 @@ def show_test(session: Session, test_id: int, *, png: Path | None = None) -> lis
         lines.append(f"  note          {row['note']}")
     if flags:
         lines.append("  flags:")
-        lines += [f"    - {flag}: {FLAG_TEXT.get(flag, 'no explanation registered')}" for flag in flags]
+        lines += [f"    - {flag} ({_EFFECT_WORDS.get(effect(flag), 'makes it suspect')}): {flag_text(flag)}"
+                  for flag in flags]
     fitted = _fitted_curve(fit, t, u)
     lines += ["", *sparkline_rows(t, y, fitted, u, output_unit=data.units.get("output", ""),
                                   input_unit=data.units.get("input", ""))]

@@ -54,14 +54,13 @@ def _ranges(info: dict) -> tuple[tuple[float, float] | None, tuple[float, float]
 
 
 def fit_one(job: tuple) -> dict:
-    """Identify one test; ``job`` is (test_id, t, u, y, input_range, output_range, method)."""
-    test_id, t, u, y, input_range, output_range, method = job
-    result = identify(t, u, y, method=method, input_range=input_range, output_range=output_range)
+    """Identify one test; ``job`` is (test_id, t, u, y, input_range, output_range, method)
+    with, optionally, the test's import flags as an eighth item."""
+    test_id, t, u, y, input_range, output_range, method = job[:7]
+    import_flags = tuple(job[7]) if len(job) > 7 and job[7] is not None else ()
+    result = identify(t, u, y, method=method, input_range=input_range, output_range=output_range,
+                      import_flags=import_flags)
     row = result.to_row()
-    row["notes"] = list(getattr(result, "notes", ()) or ())
-    # kept so the fitted curve can be redrawn from the store without refitting
-    row["settings"] = {**row.get("settings", {}), "offset": result.offset,
-                       "input_before": result.input_before}
     row["test_id"] = test_id
     return row
 

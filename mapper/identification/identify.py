@@ -10,8 +10,11 @@ The estimators live in :mod:`mapper.identification.estimators`, the uncertainty 
 
 from __future__ import annotations
 
+import json
 import math
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
+from typing import ClassVar
 
 import numpy as np
 
@@ -19,12 +22,11 @@ from mapper.constants import MIN_AFTER_STEP_SAMPLES, MIN_BASELINE_SAMPLES, MIN_F
 from mapper.errors import DataError, IdentificationError
 from mapper.identification import estimators as est
 from mapper.identification.models import simulate_fopdt, simulate_integrating
+from mapper.identification.flags import flag_text, grade
 from mapper.identification.quality import (
-    FLAG_TEXT,
     StepInfo,
     assess,
     find_step,
-    grade,
     median,
     noise_sd,
     standard_deviation,
@@ -47,72 +49,149 @@ def _finite(x) -> float | None:
     return float(x) if x is not None and np.isfinite(x) else None
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, kw_only=True)
 class FitResult:
     """Identified model of one step test, with 95 % intervals, quality and flags.
 
     Times are in seconds; ``gain`` is output units per input unit (per second for the
     integrating model). Interval bounds are None where no interval can be given (point
-    methods, or a parameter the data do not determine); ``notes`` says why.
+    methods, or a parameter the data do not determine); ``notes`` says why. Every field
+    is named at construction (the record is wide; no positional construction).
+
+    Attributes
+    ----------
+    model : str
+        ``"fopdt"``, ``"integrating"`` or ``"none"`` (no usable model).
+    method : str
+        Estimator actually used.
+    gain, time_constant, dead_time : float or None
+        The parameters; each with ``*_lo``/``*_hi`` 95 % bounds.
+    nrmse : float or None
+        Root-mean-square residual over the span of the fitted response.
+    quality : str
+        ``"good"``, ``"suspect"`` or ``"rejected"``, from the flags
+        (:func:`mapper.identification.flags.grade`), import flags included.
+    flags, notes : tuple of str
+        Identification flags, and one sentence per flag (import flags' sentences
+        included) plus notes on the method.
+    input_step, step_time : float or None
+        Size (input units) and start (s) of the input move.
+    y_before, y_after : float or None
+        Output level before the move (the model's rest level) and at its end.
+    offset : float or None
+        The model's output at rest at ``input_before`` (the constant of the fit).
+    input_before : float or None
+        Input level before the move; the model's input deviation is taken from it.
+    start_state : float or None
+        Amplitude at the window's first sample of the free response the fit estimated
+        (the plant still moving from earlier moves, decaying with the model's time
+        constant); None when the fit assumed the plant at rest.
+    residual_sd, autocorrelation : float or None
+        Standard deviation and lag-one autocorrelation of the residuals.
+    model_evidence : str
+        Which evidence decided between the first-order and the integrating model.
+    settings : dict
+        How the fit was made (method, confidence, ranges, period).
     """
 
     model: str
     method: str
-    gain: float | None
-    gain_lo: float | None
-    gain_hi: float | None
-    time_constant: float | None
-    time_constant_lo: float | None
-    time_constant_hi: float | None
-    dead_time: float | None
-    dead_time_lo: float | None
-    dead_time_hi: float | None
-    nrmse: float | None
-    quality: str
-    flags: tuple[str, ...]
-    notes: tuple[str, ...]
-    input_step: float | None
-    step_time: float | None
-    y_before: float | None
-    y_after: float | None
-    settings: dict = field(default_factory=dict, hash=False, compare=False)
+    gain: float | None = None
+    gain_lo: float | None = None
+    gain_hi: float | None = None
+    time_constant: float | None = None
+    time_constant_lo: float | None = None
+    time_constant_hi: float | None = None
+    dead_time: float | None = None
+    dead_time_lo: float | None = None
+    dead_time_hi: float | None = None
+    nrmse: float | None = None
+    quality: str = "rejected"
+    flags: tuple[str, ...] = ()
+    notes: tuple[str, ...] = ()
+    input_step: float | None = None
+    step_time: float | None = None
+    y_before: float | None = None
+    y_after: float | None = None
     offset: float | None = None
     input_before: float | None = None
+    start_state: float | None = None
     residual_sd: float | None = None
     autocorrelation: float | None = None
+    model_evidence: str = ""
+    settings: dict = field(default_factory=dict, hash=False, compare=False)
 
-    _ROW_KEYS = (
+    VALUE_FIELDS: ClassVar[tuple[str, ...]] = (
         "model", "method", "gain", "gain_lo", "gain_hi", "time_constant",
         "time_constant_lo", "time_constant_hi", "dead_time", "dead_time_lo",
         "dead_time_hi", "nrmse", "quality", "input_step", "step_time", "y_before", "y_after",
+        "offset", "input_before", "start_state", "residual_sd", "autocorrelation",
+        "model_evidence",
     )  # fmt: skip
 
     def to_row(self) -> dict:
-        """Plain dict for the store: the parameter columns, ``flags`` and ``notes`` as
+        """The one conversion for the store: value columns, ``flags`` and ``notes`` as
         lists of str and ``settings`` as a dict."""
-        row = {key: getattr(self, key) for key in self._ROW_KEYS}
+        row = {key: getattr(self, key) for key in self.VALUE_FIELDS}
         row["flags"] = list(self.flags)
         row["notes"] = list(self.notes)
         row["settings"] = dict(self.settings)
         return row
 
+    @classmethod
+    def from_row(cls, row: Mapping) -> FitResult:
+        """The record back from a stored row (missing columns become None; ``settings``
+        may be a dict or its JSON text)."""
+        values: dict = {}
+        for key in cls.VALUE_FIELDS:
+            value = row.get(key)
+            if key in ("model", "method", "quality", "model_evidence"):
+                values[key] = value if isinstance(value, str) else ("" if key == "model_evidence" else "none")
+            else:
+                values[key] = _finite(value) if isinstance(value, (int, float)) else None
+        settings = row.get("settings") or {}
+        if isinstance(settings, str):
+            settings = json.loads(settings or "{}")
+        for key in ("offset", "input_before"):  # stores written before these were columns
+            if values[key] is None and isinstance(settings.get(key), (int, float)):
+                values[key] = _finite(settings[key])
+        return cls(
+            **values,
+            flags=_strings(row.get("flags")),
+            notes=_strings(row.get("notes")),
+            settings=dict(settings),
+        )
+
     def fitted(self, t: np.ndarray, u: np.ndarray) -> np.ndarray:
-        """The model's output on samples ``t, u`` (NaN everywhere when there is no model)."""
+        """The model's output on samples ``t, u`` of the test window (NaN everywhere when
+        there is no model), the estimated starting free response included."""
         t = np.asarray(t, dtype=float)
         u = np.asarray(u, dtype=float)
-        ok = self.gain is not None and self.dead_time is not None and self.offset is not None
-        if self.model == "none" or not ok or t.size < 2:
+        offset = self.offset if self.offset is not None else self.y_before
+        gain, dead_time, tau = self.gain, self.dead_time, self.time_constant
+        if self.model == "none" or gain is None or dead_time is None or offset is None or t.size < 2:
             return np.full(t.shape, np.nan)
         period = float(np.median(np.diff(t)))
         u0 = self.input_before if self.input_before is not None else float(u[0])
         if self.model == "integrating":
-            return simulate_integrating(u, period, self.gain, self.dead_time, u0=u0, y0=self.offset)
-        return simulate_fopdt(
-            u, period, self.gain, self.time_constant, self.dead_time, u0=u0, y0=self.offset
-        )
+            out = simulate_integrating(u, period, gain, dead_time, u0=u0, y0=offset)
+            if self.start_state:  # the starting ramp, in output units per second
+                out = out + self.start_state * (t - t[0])
+            return out
+        if tau is None:
+            return np.full(t.shape, np.nan)
+        out = simulate_fopdt(u, period, gain, tau, dead_time, u0=u0, y0=offset)
+        if self.start_state:
+            out = out + self.start_state * np.exp(-(t - t[0]) / tau)
+        return out
 
 
-def _rejected(method, flags, settings, step: StepInfo | None = None, y=None) -> FitResult:
+def _strings(values) -> tuple[str, ...]:
+    """A stored list column (list, array or None) as a tuple of str."""
+    return () if values is None else tuple(str(v) for v in values)
+
+
+def _rejected(method, flags, settings, step: StepInfo | None = None, y=None, import_flags=()) -> FitResult:
     flags = tuple(dict.fromkeys(flags))
     y_before = y_after = None
     if step is not None and y is not None and y.size and step.index > 0:
@@ -120,12 +199,17 @@ def _rejected(method, flags, settings, step: StepInfo | None = None, y=None) -> 
     if y is not None and y.size:
         y_after = _finite(np.mean(y[-max(1, y.size // 10) :]))
     return FitResult(
-        "none", method, None, None, None, None, None, None, None, None, None, None,
-        "rejected", flags, tuple(FLAG_TEXT.get(f, f) for f in flags),
-        _finite(step.size) if step is not None else None,
-        _finite(step.time) if step is not None else None,
-        y_before, y_after, settings,
-    )  # fmt: skip
+        model="none",
+        method=method,
+        quality="rejected",
+        flags=flags,
+        notes=tuple(flag_text(f) for f in (*import_flags, *flags)),
+        input_step=_finite(step.size) if step is not None else None,
+        step_time=_finite(step.time) if step is not None else None,
+        y_before=y_before,
+        y_after=y_after,
+        settings=settings,
+    )
 
 
 def identify(
@@ -136,6 +220,7 @@ def identify(
     method: str = "least_squares",
     input_range: tuple[float, float] | None = None,
     output_range: tuple[float, float] | None = None,
+    import_flags: Sequence[str] = (),
 ) -> FitResult:
     """Identify a FOPDT (or integrating) model from one open-loop step test.
 
@@ -151,6 +236,10 @@ def identify(
         ``"sundaresan"`` or ``"area"``.
     input_range, output_range : (float, float), optional
         Instrument ranges, used by the clipping checks.
+    import_flags : sequence of str, optional
+        Flags raised when the test was imported (see :mod:`mapper.identification.flags`);
+        they feed the grade and their sentences lead the notes, but are not repeated in
+        ``FitResult.flags`` (the store keeps them with the test).
 
     Returns
     -------
@@ -191,35 +280,37 @@ def identify(
         "output_range": list(output_range) if output_range is not None else None,
     }
     if t.size < MIN_FIT_SAMPLES:
-        return _rejected(method, ["too_few_samples"], settings)
+        return _rejected(method, ["too_few_samples"], settings, import_flags=import_flags)
     if not (np.all(np.isfinite(t)) and np.all(np.isfinite(u)) and np.all(np.isfinite(y))):
-        return _rejected(method, ["non_finite_samples"], settings)
+        return _rejected(method, ["non_finite_samples"], settings, import_flags=import_flags)
     dt = np.diff(t)
     period = median(dt)
     if not period > 0 or np.any(dt <= 0):
-        return _rejected(method, ["irregular_sampling", "too_few_samples"], settings)
+        return _rejected(method, ["irregular_sampling", "too_few_samples"], settings, import_flags=import_flags)
     flags: list[str] = []
     if np.max(np.abs(dt - period)) > 0.01 * period:
         flags.append("irregular_sampling")
     settings["period"] = period
     step = find_step(t, u)
     if not step.found:
-        return _rejected(method, flags + ["no_input_step"], settings, step, y)
+        return _rejected(method, flags + ["no_input_step"], settings, step, y, import_flags)
     if step.index < MIN_BASELINE_SAMPLES:
-        return _rejected(method, flags + ["no_baseline_before_step"], settings, step, y)
+        return _rejected(method, flags + ["no_baseline_before_step"], settings, step, y, import_flags)
     if t.size - step.index < MIN_AFTER_STEP_SAMPLES:
-        return _rejected(method, flags + ["step_at_end"], settings, step, y)
+        return _rejected(method, flags + ["step_at_end"], settings, step, y, import_flags)
     if np.ptp(y) == 0.0:
-        return _rejected(method, flags + ["no_response"], settings, step, y)
+        return _rejected(method, flags + ["no_response"], settings, step, y, import_flags)
     try:
         with np.errstate(all="ignore"):
-            return _identify_step(t, u, y, step, method, flags, settings, input_range, output_range)
+            return _identify_step(
+                t, u, y, step, method, flags, settings, input_range, output_range, import_flags
+            )
     except (ValueError, ArithmeticError, np.linalg.LinAlgError):
         # numbers beyond what the arithmetic can carry: a rejected fit with a reason, not a crash
-        return _rejected(method, flags + ["numerical_failure"], settings, step, y)
+        return _rejected(method, flags + ["numerical_failure"], settings, step, y, import_flags)
 
 
-def _identify_step(t, u, y, step, method, flags, settings, input_range, output_range):
+def _identify_step(t, u, y, step, method, flags, settings, input_range, output_range, import_flags):
     period = settings["period"]
     v = u - step.u_before
     notes: list[str] = []
@@ -233,7 +324,7 @@ def _identify_step(t, u, y, step, method, flags, settings, input_range, output_r
     if method == "least_squares" or _still_ramping(shape):
         fit = _least_squares(period, v, y, step, start)
         if fit is None:
-            return _rejected(method, flags + ["fit_failed"], settings, step, y)
+            return _rejected(method, flags + ["fit_failed"], settings, step, y, import_flags)
         if method != "least_squares" and fit.estimate.model == "fopdt":
             fit = None  # the point method stands; the record merely did not settle
         elif method != "least_squares":
@@ -249,7 +340,7 @@ def _identify_step(t, u, y, step, method, flags, settings, input_range, output_r
     else:
         e = _POINT_METHODS[method](shape, step)
         if e.time_constant is None:
-            return _rejected(method, flags + ["fit_failed"], settings, step, y)
+            return _rejected(method, flags + ["fit_failed"], settings, step, y, import_flags)
         notes.append("Point methods give no interval; use least_squares for 95 % intervals.")
     settings["method"] = used
     if e.model == "integrating":
@@ -285,7 +376,7 @@ def _identify_step(t, u, y, step, method, flags, settings, input_range, output_r
     if e.at_bound and e.model == "fopdt":
         flags.append("time_constant_at_bound")
     flags = list(dict.fromkeys(flags))
-    notes = [FLAG_TEXT.get(f, f) for f in flags] + notes
+    notes = [flag_text(f) for f in (*import_flags, *flags)] + notes
     return FitResult(
         model=e.model, method=used,
         gain=_finite(e.gain), gain_lo=gain_lo, gain_hi=gain_hi,
@@ -294,7 +385,7 @@ def _identify_step(t, u, y, step, method, flags, settings, input_range, output_r
         time_constant_hi=intervals["time_constant"][1],
         dead_time=_finite(e.dead_time),
         dead_time_lo=intervals["dead_time"][0], dead_time_hi=intervals["dead_time"][1],
-        nrmse=_finite(nrmse), quality=grade(flags), flags=tuple(flags), notes=tuple(notes),
+        nrmse=_finite(nrmse), quality=grade([*import_flags, *flags]), flags=tuple(flags), notes=tuple(notes),
         input_step=_finite(step.size), step_time=_finite(step.time),
         y_before=_finite(e.offset), y_after=_finite(y_after), settings=settings,
         offset=_finite(e.offset), input_before=_finite(step.u_before),

@@ -22,9 +22,6 @@ __all__ = [
     "find_step",
     "noise_sd",
     "assess",
-    "grade",
-    "REJECTING_FLAGS",
-    "FLAG_TEXT",
 ]
 
 from mapper.constants import (
@@ -39,46 +36,6 @@ from mapper.constants import (
     QUANTUM_LEVELS,
     SETTLE_TIME_CONSTANTS,
 )
-
-REJECTING_FLAGS = frozenset(
-    {
-        "too_few_samples",
-        "non_finite_samples",
-        "no_input_step",
-        "no_baseline_before_step",
-        "step_at_end",
-        "no_response",
-        "response_below_noise",
-        "dead_time_beyond_record",
-        "fit_failed",
-        "numerical_failure",
-    }
-)
-
-FLAG_TEXT = {
-    "too_few_samples": "The record has too few samples to identify a model.",
-    "non_finite_samples": "The record holds missing or non-finite samples.",
-    "irregular_sampling": "Samples are not evenly spaced; resample before identification.",
-    "no_input_step": "The input does not move clearly above its noise.",
-    "no_baseline_before_step": "There is almost no record before the input step.",
-    "step_at_end": "The input step is too close to the end of the record.",
-    "no_response": "The output does not change.",
-    "response_below_noise": "The output change is not larger than its noise band.",
-    "dead_time_beyond_record": "The response starts at or after the end of the record.",
-    "fit_failed": "The model fit did not converge to a usable answer.",
-    "numerical_failure": "The values are beyond what the fit's arithmetic can carry.",
-    "drift_before_step": "The output drifted before the step.",
-    "not_settled": "The record ends before dead time + 4 time constants after the step.",
-    "input_clipped": "The input sat at an instrument limit or was flat-topped.",
-    "output_clipped": "The output sat at an instrument limit or was flat-topped.",
-    "small_response": "The output change is small against the noise band (under 5 bands).",
-    "multiple_input_moves": "The input moved more than once during the test.",
-    "few_samples_per_time_constant": "Fewer than 10 samples per time constant.",
-    "quantised_output": "The output is coarsely quantised against its change.",
-    "poor_fit": "The residuals show structure the model does not explain.",
-    "time_constant_at_bound": "The time constant ran to the edge of what the record can show.",
-}
-
 
 @dataclass(frozen=True)
 class StepInfo:
@@ -382,7 +339,7 @@ def assess(
     Returns
     -------
     list of str
-        Flags in a fixed order; see :data:`FLAG_TEXT`.
+        Flags in a fixed order; see :mod:`mapper.identification.flags`.
 
     Notes
     -----
@@ -440,11 +397,3 @@ def _flat_topped_noisy_input(u: np.ndarray) -> bool:
     if _distinct_share(u) < 0.5:
         return False
     return _flat_topped(u)
-
-
-def grade(flags) -> str:
-    """``"rejected"`` if any flag rejects, ``"suspect"`` if any flag, else ``"good"``."""
-    flags = list(flags)
-    if any(f in REJECTING_FLAGS for f in flags):
-        return "rejected"
-    return "suspect" if flags else "good"

@@ -16,7 +16,7 @@ first time it is opened for writing. Every statement binds its values as paramet
 from __future__ import annotations
 
 from collections.abc import Sequence
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 
 import duckdb
 import pandas as pd
@@ -40,7 +40,7 @@ CURATION_COLUMNS = ("excluded", "exclusion_reason", "excluded_by", "excluded_at"
 
 def utc_now() -> datetime:
     """The current time in UTC, without zone (the store keeps every timestamp in UTC)."""
-    return datetime.now(timezone.utc).replace(tzinfo=None, microsecond=0)
+    return datetime.now(UTC).replace(tzinfo=None, microsecond=0)
 
 
 def has_curation_tables(con: duckdb.DuckDBPyConnection) -> bool:
