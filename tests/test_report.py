@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import html
 import json
 import re
 import shutil
@@ -13,9 +14,10 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from mapper.presentation import charts
-from mapper.presentation import report
 from mapper.errors import MapperError
+from mapper.presentation import charts, report
+from mapper.presentation.report import cards
+from mapper.presentation.report import page as report_page
 
 EVIL = "<script>alert(1)</script>"
 BREAKOUT = "</script><script>alert(2)</script>"
@@ -108,7 +110,7 @@ def test_report_info_and_sections(written):
 def test_report_lists_rejected_then_suspect_then_good(written):
     _, text = written
     positions = [text.index(f"<h3>{name} ") for name in
-                 ("R80down", report.html.escape(EVIL), "G20up", "G50down")]
+                 ("R80down", html.escape(EVIL), "G20up", "G50down")]
     assert positions == sorted(positions)
 
 
@@ -218,8 +220,8 @@ def test_streamed_tests_are_held_one_at_a_time(inputs, tmp_path):
 
 def test_overlay_rows_stream_in_chunks_as_valid_json(inputs, tmp_path, monkeypatch):
     tests = [fopdt_test(f"C{index}", 30.0, "up", 1.5, 12.0, 3.0, seed=index) for index in range(5)]
-    original = report._overlay
-    monkeypatch.setattr(report, "_overlay", lambda page, series, spec_id: original(
+    original = cards.overlay
+    monkeypatch.setattr(cards, "overlay", lambda page, series, spec_id: original(
         page, series, spec_id, chunk=7))  # many small chunks, one partly filled
     info = report.write_report(tmp_path / "c.html", **{**inputs, "tests": tests})
     text = info.path.read_text(encoding="utf-8")
@@ -228,7 +230,7 @@ def test_overlay_rows_stream_in_chunks_as_valid_json(inputs, tmp_path, monkeypat
     rows = [r for values in spec["datasets"].values() for r in values if "response" in r]
     expected = sum(len(charts.overlay_series(t).elapsed) for t in tests)
     assert len(rows) == expected
-    assert report._ROWS_PLACEHOLDER not in rows
+    assert cards.ROWS_PLACEHOLDER not in rows
 
 
 def test_error_while_streaming_leaves_no_half_report(inputs, tmp_path):
@@ -298,7 +300,7 @@ def test_report_renders_offline_in_a_browser(written, tmp_path):
 def test_browser_helper_sees_script_errors(tmp_path):
     # the check above could pass vacuously if errors went unseen: make one on purpose
     page = tmp_path / "broken.html"
-    page.write_text("<html><head><script>" + report._ERROR_HOOK + "</script></head><body>"
+    page.write_text("<html><head><script>" + report_page.asset("error_hook.js") + "</script></head><body>"
                     "<script>notDefinedAnywhere();</script></body></html>", encoding="utf-8")
     dom, log = render_offline(page, tmp_path / "profile")
     assert 'data-script-errors="1"' in dom
