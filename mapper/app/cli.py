@@ -451,7 +451,7 @@ def exclude_command(
     with _session(write=True) as session:
         ids = session.known_tests(test_ids)
         who = views.user_name()
-        session.store.exclude_tests(ids, reason=reason.strip(), by=who)
+        session.curation.exclude_tests(ids, reason=reason.strip(), by=who)
     _say([f"test {i} excluded by {who}: {reason.strip()}" for i in ids])
 
 
@@ -463,7 +463,7 @@ def include_command(
     """Bring excluded tests back into the map, comparisons and verdict."""
     with _session(write=True) as session:
         ids = session.known_tests(test_ids)
-        restored = session.store.include_tests(ids)
+        restored = session.curation.include_tests(ids)
     _say([f"test {i} included again" if i in restored else f"test {i} was not excluded" for i in ids])
 
 
@@ -478,7 +478,7 @@ def note_command(
         raise UsageError("the note is empty")
     with _session(write=True) as session:
         session.known_tests([test_id])
-        session.store.add_note(test_id, text.strip(), by=views.user_name())
+        session.curation.add_note(test_id, text.strip(), by=views.user_name())
     typer.echo(f"note added to test {test_id}")
 
 

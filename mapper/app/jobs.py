@@ -126,7 +126,8 @@ def _iter_tests(store: Store, params: pd.DataFrame, *, batch: int = 32):
             t, u, y = samples.pop(test_id)
             fit = fits.pop(test_id, None)
             item = dict(row)
-            item.update(note=notes.get(test_id, ""), t=t, u=u, y=y,
+            # the params row's note carries later notes too (with their time); the file's otherwise
+            item.update(note=row.get("note") or notes.get(test_id, ""), t=t, u=u, y=y,
                         fitted=_fitted_curve(fit, t, u),
                         step_time=_finite(fit.get("step_time")) if fit else None)
             yield item

@@ -20,7 +20,8 @@ from mapper.analysis.compare import compare_campaigns, compare_directions, compa
 from mapper.analysis.opmap import OperatingMap, build_map
 from mapper.analysis.verdict import Verdict, decide
 from mapper.errors import MapperError, NotFoundError, UsageError
-from mapper.store.database import Store
+from mapper.store.curation import Curation, upgrade, with_curation
+from mapper.store.database import SCHEMA_VERSION, Store
 
 AGAINST = {"level": "level", "input": "input_level"}
 
@@ -79,7 +80,7 @@ class CampaignData:
 
 def campaign_data(store: Store, info: dict) -> CampaignData:
     """The rows, units and ranges of the campaign described by ``info`` (a campaign row)."""
-    params = store.params(campaign=info["name"])
+    params = with_curation(store.connection, store.params(campaign=info["name"]))
     units = {"input": info.get("input_unit") or "", "output": info.get("output_unit") or ""}
     ranges = {}
     for side in ("input", "output"):
@@ -121,7 +122,14 @@ class Session:
     def store(self) -> Store:
         if self._store is None:
             self._store = Store(self.path, read_only=not self.write, create=self.create)
+            if self.write:  # an older store gains this schema's tables when opened for writing
+                upgrade(self._store.connection, SCHEMA_VERSION)
         return self._store
+
+    @property
+    def curation(self) -> Curation:
+        """Exclusions and notes of the store."""
+        return Curation(self.store.connection)
 
     def close(self) -> None:
         if self._store is not None and self._owned:
