@@ -14,9 +14,9 @@ from pathlib import Path
 
 import duckdb
 import pytest
+from conftest import ENTRY_POINT, write_campaign, write_step_csv
 from typer.testing import CliRunner
 
-from conftest import ENTRY_POINT, write_campaign, write_step_csv
 from mapper.app import cli
 from mapper.app.cli import app
 

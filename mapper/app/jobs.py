@@ -112,7 +112,8 @@ def _iter_tests(store: Store, params: pd.DataFrame, *, batch: int = 32):
     a time, so at most ``batch`` tests' samples are in memory whatever the campaign size.
     """
     from mapper.presentation.report import test_sort_key
-    rows = sorted(params.to_dict("records"), key=test_sort_key)
+    records: list[dict] = params.to_dict("records")
+    rows = sorted(records, key=test_sort_key)
     for start in range(0, len(rows), batch):
         chunk = rows[start:start + batch]
         ids = [int(row["test_id"]) for row in chunk]
