@@ -54,7 +54,8 @@ if TYPE_CHECKING:
     from mapper.store.campaign import Campaign, TestEntry, load_campaign
     from mapper.store.database import Store
     from mapper.store.ingest import ImportSummary, import_sources, read_signals
-    from mapper.store.segment import find_moves, split_signals, uniform_grid
+    from mapper.signals import find_moves
+    from mapper.store.segment import split_signals, uniform_grid
 
 _HOMES: dict[str, str] = {
     "MapperError": "mapper.errors",
@@ -73,7 +74,7 @@ _HOMES: dict[str, str] = {
     "read_signals": "mapper.store.ingest",
     "ImportSummary": "mapper.store.ingest",
     "split_signals": "mapper.store.segment",
-    "find_moves": "mapper.store.segment",
+    "find_moves": "mapper.signals",
     "uniform_grid": "mapper.store.segment",
     "Store": "mapper.store.database",
     "zoh_coefficients": "mapper.identification.models",

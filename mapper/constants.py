@@ -20,9 +20,14 @@ __all__ = [
     "MIN_SAMPLES_PER_TIME_CONSTANT",
     "DRIFT_FRACTION",
     "MOVE_FRACTION",
+    "MOVE_NOISE_SDS",
+    "MOVE_SPAN_FRACTION",
+    "RAMP_GAP_SAMPLES",
+    "BLIP_SAMPLES",
     "QUANTUM_LEVELS",
     "CLIP_SPAN_FRACTION",
     "MISFIT_FRACTION",
+    "RELEVANT_CHANGE_RATIO",
 ]
 
 # two-sided 95 % point of the standard normal (any statistics table; scipy.stats.norm.ppf(0.975))
@@ -42,6 +47,19 @@ NOISE_BAND_SDS = 4.0  # peak-to-peak noise band taken as +-2 sd
 MIN_SAMPLES_PER_TIME_CONSTANT = 10.0
 DRIFT_FRACTION = 0.10  # pre-step drift, carried over the test, against the response
 MOVE_FRACTION = 0.10  # input moves smaller than this share of the main step are ignored
+
+# --- finding input moves in a record (common practice) ------------------------------------
+MOVE_NOISE_SDS = 8.0  # a move changes the held input by more than this many noise sds...
+MOVE_SPAN_FRACTION = 0.02  # ...and by more than this share of the input's range
+RAMP_GAP_SAMPLES = 2  # ramp pieces one way with at most this many samples between: one move
+BLIP_SAMPLES = 5  # a move reversed within this many samples is one event (a blip)
 QUANTUM_LEVELS = 50  # fewer output levels than this across the response: quantised
 CLIP_SPAN_FRACTION = 0.005  # within 0.5 % of an instrument limit counts as at the limit
 MISFIT_FRACTION = 0.10  # systematic residual beyond 10 % of the response: poor fit
+
+# --- operating map ----------------------------------------------------------------------------
+# Smallest change of a parameter over the tested range that matters for one controller: a loop tuned
+# by SIMC with tau_c = theta, L = e^(-theta s)/(2 theta s), has Ms 1.59 (Skogestad 2003); its loop gain
+# times 1.4 gives Ms 2.0, the default limit (computed from that loop). The map says "not enough tests"
+# rather than "constant" while a change of this factor is still inside the uncertainty.
+RELEVANT_CHANGE_RATIO = 1.4

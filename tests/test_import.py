@@ -13,7 +13,8 @@ import pytest
 
 from conftest import run_mapper, write_campaign, write_step_csv
 from mapper.store.ingest import read_signals
-from mapper.store.database import PARAM_COLUMNS, Store
+from mapper.columns import TEST_PARAMS_NAMES
+from mapper.store.database import Store
 
 
 def stored(db: Path) -> list[tuple]:
@@ -40,7 +41,7 @@ def test_view_has_every_public_column_and_plain_client_can_query(tmp_path, small
         levels = con.execute("SELECT level, direction FROM test_params ORDER BY test_id").fetchall()
         samples = con.execute("SELECT count(*) FROM samples").fetchone()[0]
         version = con.execute("SELECT value FROM mapper_meta WHERE key='schema_version'").fetchone()[0]
-    assert columns == list(PARAM_COLUMNS)
+    assert columns == list(TEST_PARAMS_NAMES)
     assert [lv for lv, _ in levels] == [30.0, 30.0, 60.0, 60.0]  # campaign file wins
     assert [d for _, d in levels] == ["up", "down", "up", "down"]
     assert samples == 4 * 200
@@ -55,12 +56,12 @@ def test_params_json_and_filters(tmp_path, small_campaign):
     rows = json.loads(out.stdout)
     assert len(rows) == 1 and rows[0]["level"] == 60.0 and rows[0]["direction"] == "down"
     # the view's columns, plus the curation columns and the units object (issue 15)
-    assert set(rows[0]) - set(PARAM_COLUMNS) <= {"excluded", "exclusion_reason", "excluded_by",
-                                                 "excluded_at", "note", "units"}
-    assert set(PARAM_COLUMNS) <= set(rows[0]) and rows[0]["units"]["gain"] == "cm/%"
+    assert set(rows[0]) - set(TEST_PARAMS_NAMES) <= {"excluded", "exclusion_reason", "excluded_by",
+                                                     "excluded_at", "note", "units"}
+    assert set(TEST_PARAMS_NAMES) <= set(rows[0]) and rows[0]["units"]["gain"] == "cm/%"
     assert rows[0]["gain"] is None  # not fitted yet
     csv_out = run_mapper("params", "--format", "csv", db=db)
-    assert csv_out.stdout.splitlines()[0].split(",")[:len(PARAM_COLUMNS)] == list(PARAM_COLUMNS)
+    assert csv_out.stdout.splitlines()[0].split(",")[:len(TEST_PARAMS_NAMES)] == list(TEST_PARAMS_NAMES)
 
 
 def test_loose_files_with_columns(tmp_path):

@@ -162,7 +162,8 @@ def test_consistent_intervals_give_weighted_mean_band():
     assert trend.extra_scatter == 0.0
     value, lo, hi = trend.evaluate(1.5)
     assert value == pytest.approx(y.mean())
-    assert hi - value == pytest.approx(Z * 0.05 / 2.0, rel=1e-9)  # 1.96 sigma / sqrt(n)
+    # 1.96 sigma / sqrt(n); the log-scale shapes averaged into the band differ from it by parts in 1e7.
+    assert hi - value == pytest.approx(Z * 0.05 / 2.0, rel=1e-5)
 
 
 def test_gain_over_time_constant_interval_propagation():

@@ -21,6 +21,7 @@ import ast
 import json
 import os
 import random
+import re
 import shutil
 import signal
 import subprocess
@@ -35,6 +36,7 @@ import pytest
 
 from conftest import ENTRY_POINT, run_mapper, write_campaign
 from fault_corpus import FAULTS, ODD_EXPORTS, clean_frame, csv_text
+from mapper import columns
 from mapper.store.ingest import read_signals
 from mapper.store.database import Store
 
@@ -478,8 +480,13 @@ def test_sql_is_never_built_from_values():
     # `statement` walks the constant schema list: every element a plain string constant
     listed = [node.value for node in ast.walk(schema) if isinstance(node, ast.Assign)
               and any(getattr(target, "id", "") == "_SCHEMA" for target in node.targets)]
-    assert listed and all(isinstance(e, ast.Constant) for e in listed[0].elts)
-    store = (PACKAGE / "store" / "database.py").read_text()
+    # ...or a statement generated from the column registry, whose names are plain identifiers
+    generated = {"_fits_table_sql", "_view_sql"}
+    assert listed and all(isinstance(e, ast.Constant) or (isinstance(e, ast.Call) and e.func.id in generated)
+                          for e in listed[0].elts)
+    registered = (*columns.FIT_VALUE_COLUMNS, *columns.FIT_LIST_COLUMNS, *columns.TEST_PARAMS_COLUMNS)
+    assert all(re.fullmatch(r"[a-z][a-z0-9_]*", c.name) for c in registered)
+    store = (PACKAGE / "store" / "readers.py").read_text()
     # the only interpolated pieces: constant reader options and header-checked column names
     assert "column names with double quotes are not supported" in store
     assert "read_csv(?{options})" in store

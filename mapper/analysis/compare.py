@@ -85,7 +85,7 @@ def compare_repeats(params: pd.DataFrame, *, against: str = "level", level_toler
     """
     frame = _groups(params, against, level_tolerance)
     rows = []
-    for (group, direction), part in frame.groupby(["_group", "direction"], sort=True):
+    for (_group, direction), part in frame.groupby(["_group", "direction"], sort=True):
         if len(part) < 2:
             continue
         level = float(part["_x"].mean())
@@ -133,7 +133,7 @@ def compare_directions(params: pd.DataFrame, *, against: str = "level", level_to
     """
     frame = _groups(params, against, level_tolerance)
     rows = []
-    for group, part in frame.groupby("_group", sort=True):
+    for _group, part in frame.groupby("_group", sort=True):
         up = part[part["direction"] == "up"]
         down = part[part["direction"] == "down"]
         if up.empty or down.empty:
@@ -205,9 +205,10 @@ def compare_campaigns(params_a: pd.DataFrame, params_b: pd.DataFrame, *, against
     low, high = max(map_a.level_min, map_b.level_min), min(map_a.level_max, map_b.level_max)
     if low > high:
         return [{"parameter": None, "campaign_a": name_a, "campaign_b": name_b, "moved": None, "levels": [],
-                 "sentence": (f"Campaigns {name_a} ({format_level(map_a.level_min)} to {format_level(map_a.level_max)}) and {name_b} "
-                              f"({format_level(map_b.level_min)} to {format_level(map_b.level_max)}) share no tested range; "
-                              f"nothing to compare.")}]
+                 "sentence": (f"Campaigns {name_a} ({format_level(map_a.level_min)} to "
+                              f"{format_level(map_a.level_max)}) and {name_b} "
+                              f"({format_level(map_b.level_min)} to {format_level(map_b.level_max)}) "
+                              f"share no tested range; nothing to compare.")}]
     levels = np.array(sorted({v for v in map_a.levels + map_b.levels if low <= v <= high}) or [low])
     rows = []
     for name in COMPARED + ("gain_over_time_constant",):
@@ -229,7 +230,8 @@ def compare_campaigns(params_a: pd.DataFrame, params_b: pd.DataFrame, *, against
                         f"({change[k]:+.0%}); significant at {against} {where}.")
         else:
             sentence = (f"{LABELS[name].capitalize()} did not move significantly between {name_a} and "
-                        f"{name_b} over the shared range {format_level(low)} to {format_level(high)} (largest difference "
+                        f"{name_b} over the shared range {format_level(low)} to {format_level(high)} "
+                        f"(largest difference "
                         f"{change[k]:+.0%} at {against} {format_level(levels[k])}, inside the uncertainty).")
         rows.append({"parameter": name, "campaign_a": name_a, "campaign_b": name_b,
                      "moved": bool(moved_at.size), "levels": [float(v) for v in moved_at],

@@ -189,7 +189,8 @@ def frequency_margins(response: Callable, *, w, phase: Callable | None = None) -
     for i in np.flatnonzero(np.diff(branch) != 0):
         level = -np.pi + 2 * np.pi * max(branch[i], branch[i + 1])
         try:
-            x = math.exp(brentq(lambda lx: phase_at(math.exp(lx)) - level, log_w[i], log_w[i + 1], xtol=1e-12))
+            x = math.exp(brentq(lambda lx, level=level: phase_at(math.exp(lx)) - level,
+                                log_w[i], log_w[i + 1], xtol=1e-12))
         except ValueError:
             x = w[i]
         mag = float(np.abs(response(np.atleast_1d(x)))[0])

@@ -179,6 +179,7 @@ def simc_pi(gain: float, time_constant: float | None, dead_time: float, *,
         )
     if model == "integrating":
         return PITuning(kc=1.0 / (gain * total), ti=4.0 * total, rule="simc", closed_loop_time=tau_c)
+    assert time_constant is not None  # check_process demands one for an FOPDT model
     return PITuning(kc=time_constant / (gain * total), ti=min(time_constant, 4.0 * total), rule="simc",
                     closed_loop_time=tau_c)
 
@@ -215,8 +216,9 @@ def lambda_pi(gain: float, time_constant: float | None, dead_time: float, *,
     Chemical Engineering Progress 86 (1990) 33-41.
     """
     check_process(gain, time_constant, dead_time, model)
+    tau = float("nan") if time_constant is None else time_constant  # None only for integrating models
     if closed_loop_time is None:
-        lam = 3.0 * dead_time if model == "integrating" else max(time_constant, 3.0 * dead_time)
+        lam = 3.0 * dead_time if model == "integrating" else max(tau, 3.0 * dead_time)
     else:
         lam = float(closed_loop_time)
     if not lam + dead_time > 0:
@@ -225,7 +227,7 @@ def lambda_pi(gain: float, time_constant: float | None, dead_time: float, *,
     if model == "integrating":
         reset = 2.0 * lam + dead_time
         return PITuning(kc=reset / (gain * (lam + dead_time) ** 2), ti=reset, rule="lambda", closed_loop_time=lam)
-    return PITuning(kc=time_constant / (gain * (lam + dead_time)), ti=time_constant, rule="lambda",
+    return PITuning(kc=tau / (gain * (lam + dead_time)), ti=tau, rule="lambda",
                     closed_loop_time=lam)
 
 

@@ -133,7 +133,7 @@ def _points(opmap: OperatingMap, rule: str, closed_loop_time) -> tuple[list, lis
         tau = opmap.value("time_constant", level, significant_only=True)[0] if opmap.model == "fopdt" else None
         theta = max(opmap.value("dead_time", level, significant_only=True)[0], 0.0)
         if tau is not None and not tau > 0:
-            tau = opmap.trend("time_constant").constant
+            tau = opmap.trends["time_constant"].constant
             notes.append(f"time-constant trend not positive at {opmap.against} {format_level(level)}: "
                          f"its mean {tau:.4g} s used there")
         tau_c = closed_loop_time
@@ -141,9 +141,11 @@ def _points(opmap: OperatingMap, rule: str, closed_loop_time) -> tuple[list, lis
             hi = opmap.value("dead_time", level)[2]
             tau_c = hi if hi > 0 else (0.1 * tau if tau else None)
             if tau_c is None:
-                raise DataError(f"dead time is zero at {opmap.against} {format_level(level)}; no closed-loop time to aim at",
+                raise DataError(f"dead time is zero at {opmap.against} {format_level(level)}; "
+                                "no closed-loop time to aim at",
                                 hint="give closed_loop_time (desired closed-loop time constant, s)")
-            notes.append(f"dead time near zero at {opmap.against} {format_level(level)}: closed-loop time set to {tau_c:.3g} s")
+            notes.append(f"dead time near zero at {opmap.against} {format_level(level)}: "
+                         f"closed-loop time set to {tau_c:.3g} s")
         local = tune(rule, gain, tau, theta, closed_loop_time=tau_c, model=opmap.model)
         points.append(_Point(level, gain, tau, theta, opmap.model, local))
     return points, notes
@@ -246,7 +248,7 @@ def _variation_reasons(opmap: OperatingMap, summary: dict, points, decision: str
     sig = {name: row["significant"] for name, row in summary.items()}
     if not any(sig.values()):
         reasons.append("No parameter varies beyond its uncertainty over the tested range.")
-    gain = summary.get("gain")
+    gain: dict = summary.get("gain") or {}
     lag_dominant = opmap.model == "fopdt" and all(
         p.time_constant >= LAG_DOMINANT_RATIO * p.dead_time for p in points)
     if (lag_dominant and sig.get("gain") and sig.get("time_constant")
@@ -335,19 +337,20 @@ def decide(params: pd.DataFrame, *, ms_max: float = 2.0, slowdown_max: float = 2
     if single:
         reasons.append(
             f"One PI controller (kc {controller.kc:.4g}, ti {controller.ti:.4g} s) serves every tested level "
-            f"({span}, {len(rows)} level{'s' if len(rows) > 1 else ''}): Ms at most {worst_ms['ms']:.2f} (limit {format_limit(ms_max)}, at {against} "
-            f"{format_level(worst_ms['level'])}) and at most {worst_slow['slowdown']:.2f} times slower than a locally tuned "
-            f"controller (limit {format_limit(slowdown_max)}, at {against} {format_level(worst_slow['level'])}).")
+            f"({span}, {len(rows)} level{'s' if len(rows) > 1 else ''}): Ms at most {worst_ms['ms']:.2f} "
+            f"(limit {format_limit(ms_max)}, at {against} {format_level(worst_ms['level'])}) and at most "
+            f"{worst_slow['slowdown']:.2f} times slower than a locally tuned controller "
+            f"(limit {format_limit(slowdown_max)}, at {against} {format_level(worst_slow['level'])}).")
     else:
-        reasons.append(f"No single PI controller keeps Ms <= {format_limit(ms_max)} and slowdown <= {format_limit(slowdown_max)} at "
-                       f"every tested level ({span}); the best one found (kc {controller.kc:.4g}, ti "
-                       f"{controller.ti:.4g} s) fails as follows.")
+        reasons.append(f"No single PI controller keeps Ms <= {format_limit(ms_max)} and slowdown <= "
+                       f"{format_limit(slowdown_max)} at every tested level ({span}); the best one found "
+                       f"(kc {controller.kc:.4g}, ti {controller.ti:.4g} s) fails as follows.")
         over_ms = [r for r in rows if r["ms"] > ms_max * (1 + 1e-6)]
         over_slow = [r for r in rows if r["slowdown"] > slowdown_max * (1 + 1e-6)]
         if over_ms:
             reasons.append(f"At {against} {format_level(worst_ms['level'])} the single controller reaches Ms "
-                           f"{worst_ms['ms']:.2f} (limit {format_limit(ms_max)}); Ms is over the limit at {len(over_ms)} "
-                           f"of {len(rows)} tested levels.")
+                           f"{worst_ms['ms']:.2f} (limit {format_limit(ms_max)}); Ms is over the limit at "
+                           f"{len(over_ms)} of {len(rows)} tested levels.")
         if over_slow:
             reasons.append(f"At {against} {format_level(worst_slow['level'])} the single controller is "
                            f"{worst_slow['slowdown']:.2f} times slower than one tuned there (limit "

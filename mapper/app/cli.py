@@ -15,6 +15,7 @@ import os
 import sys
 from enum import StrEnum
 from pathlib import Path
+from typing import Any
 
 import typer
 from typer.core import TyperArgument, TyperCommand
@@ -49,7 +50,7 @@ app = typer.Typer(add_completion=False, no_args_is_help=True, pretty_exceptions_
                   help="Step-test campaigns to FOPDT models, an operating map and a "
                        "single-controller-or-schedule verdict.")
 command = functools.partial(app.command, cls=_Command)
-_state: dict = {"db": None, "debug": False, "quiet": False}
+_state: dict[str, Any] = {"db": None, "debug": False, "quiet": False}
 
 
 class Format(StrEnum):

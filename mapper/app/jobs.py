@@ -191,8 +191,9 @@ def analyse_store(store_path, *, out_dir: Path, campaign: str | None = None) -> 
 
 
 def sample_campaign_folder() -> Path:
-    """The bundled sample campaign (beside the package in a source checkout)."""
-    return Path(__file__).resolve().parents[2] / "sample_campaign"
+    """The sample campaign shipped inside the package (package data, in wheels too)."""
+    from mapper.demo.sample import sample_campaign_folder as packaged
+    return packaged()
 
 
 @dataclass
@@ -221,7 +222,7 @@ def run_demo(out_dir: Path, *, png: bool = True, progress: Progress | None = Non
     folders = sorted(p for p in source.iterdir() if (p / "campaign.toml").is_file()) if source.is_dir() else []
     if not folders:
         raise NotFoundError(f"the sample campaign is missing ({source})",
-                            hint="run 'python -m mapper.demo --write sample_campaign' in the source checkout")
+                            hint="reinstall mapper; the sample campaign ships inside the package")
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     db = out_dir / "demo.duckdb"

@@ -19,6 +19,7 @@ import tempfile
 import time
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -95,7 +96,8 @@ def plain_loop(folder: Path, truth: list[TruthRow]) -> dict:
         gain0 = (np.mean(y[-20:]) - offset) / step if step else 1.0
         span = t[-1] - t[0]
         try:
-            popt, _ = curve_fit(lambda tt, k, tau, theta, c: _step_curve(tt, k, tau, theta, c, step_time, step),
+            popt, _ = curve_fit(lambda tt, k, tau, theta, c, step_time=step_time, step=step:
+                                _step_curve(tt, k, tau, theta, c, step_time, step),
                                 t, y, p0=[gain0, span / 10, span / 50, offset], maxfev=2000)
             estimates.append({"gain": popt[0], "time_constant": popt[1], "dead_time": popt[2]})
         except (RuntimeError, ValueError):
@@ -148,7 +150,7 @@ def _stage(argv: list[str]) -> None:
         analyse_store(db, out_dir=db.parent / "out")
         timings["analyse_seconds"] = time.perf_counter() - started
     if stage == "bare_scan":
-        from mapper.store.database import bare_scan
+        from mapper.store.readers import bare_scan
         files = sorted(folder.glob("*.csv"))
         started = time.perf_counter()
         bare_scan(files)
@@ -180,7 +182,7 @@ def run_bench(*, tests: int = 100, samples: int = 600, scale: int = 10, workdir:
     large_all_cores = _run_child("fit_all_cores", str(large), str(e2e_large_db))
     loop_large = plain_loop(large, truth_large)
     rows = tests * samples
-    figures = {
+    figures: dict[str, Any] = {
         "machine": {"python": platform.python_version(), "processor": platform.machine(),
                     "cores": os.cpu_count(), "system": platform.platform()},
         "tests": tests, "samples": samples,
@@ -239,7 +241,8 @@ def bench_lines(figures: dict) -> list[str]:
              f"({m['cores']} cores, {m['processor']}, Python {m['python']})", "",
              f"{'measure':44} {'mapper':>12} {'plain':>12} {'ratio':>8}  target",
              f"{'import rows/s (vs bare DuckDB scan)':44} {imp['mapper_rows_per_second']:12.0f} "
-             f"{imp['bare_scan_rows_per_second']:12.0f} {imp['throughput_ratio']:8.2f}  >= 0.5: {mark('import_throughput')}",
+             f"{imp['bare_scan_rows_per_second']:12.0f} {imp['throughput_ratio']:8.2f}"
+             f"  >= 0.5: {mark('import_throughput')}",
              f"{'fit ms/test, one core (vs curve_fit loop)':44} {fit['one_core_per_test_ms']:12.2f} "
              f"{fit['curve_fit_loop_per_test_ms']:12.2f} "
              f"{fit['curve_fit_loop_per_test_ms'] / fit['one_core_per_test_ms']:8.2f}",
@@ -257,7 +260,8 @@ def bench_lines(figures: dict) -> list[str]:
              f"{'share within tolerance':44} {fit['mapper_within_tolerance']:12.1%} "
              f"{fit['curve_fit_within_tolerance']:12.1%} {'':>8}  >= loop: {mark('fit_accuracy')}",
              f"{'import + fit s (vs loop reading the files)':44} {fit['import_plus_fit_seconds']:12.2f} "
-             f"{fit['curve_fit_loop_seconds']:12.2f} {fit['curve_fit_loop_seconds'] / fit['import_plus_fit_seconds']:8.2f}",
+             f"{fit['curve_fit_loop_seconds']:12.2f} "
+             f"{fit['curve_fit_loop_seconds'] / fit['import_plus_fit_seconds']:8.2f}",
              f"{'  the same at 10x the tests (all cores)':44} {fit['large_import_plus_fit_seconds']:12.2f} "
              f"{fit['large_curve_fit_loop_seconds']:12.2f} "
              f"{fit['large_curve_fit_loop_seconds'] / fit['large_import_plus_fit_seconds']:8.2f}"

@@ -10,7 +10,8 @@ This module owns the physics (:func:`simulate_exchanger`), its analytic linearis
 (:func:`write_sample_campaign`). It depends on numpy and scipy only. The ``mapper demo``
 command that runs the whole job on the written folder lives elsewhere.
 
-Run ``python -m mapper.demo --write sample_campaign`` to regenerate the folder; output is
+Run ``python -m mapper.demo --write sample_campaign`` to regenerate the folder (then copy it to
+``mapper/demo/sample_campaign/``, the packaged copy that ``mapper demo`` reads); output is
 deterministic for a given seed.
 """
 
@@ -23,6 +24,7 @@ import math
 from collections.abc import Callable
 from dataclasses import dataclass, replace
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 from scipy.integrate import solve_ivp
@@ -208,8 +210,8 @@ def valve_ramp(start: float, moves, rate: float) -> Callable:
         position = float(target)
     knots_t.append(1e12)
     knots_x.append(position)
-    knots_t, knots_x = np.array(knots_t), np.array(knots_x)
-    return lambda t: np.interp(t, knots_t, knots_x)
+    times, values = np.array(knots_t), np.array(knots_x)
+    return lambda t: np.interp(t, times, values)
 
 
 def simulate_exchanger(t, valve_position, *, flow, inlet_temperature=15.0,
@@ -521,7 +523,7 @@ def write_sample_campaign(folder, *, seed: int = DEFAULT_SEED) -> dict:
         ``clipped``).
     """
     root = Path(folder)
-    summary = {"folder": str(root), "bytes": 0, "campaigns": []}
+    summary: dict[str, Any] = {"folder": str(root), "bytes": 0, "campaigns": []}
     truth_rows = []
     for index, (sub, name, params, inlet, period, noise_sd, explicit, planner) in enumerate(
             _CAMPAIGNS):

@@ -45,7 +45,8 @@ class Flag:
     effect : str
         ``"rejects"``, ``"suspect"`` or ``"informs"``: what the flag does to the grade.
     source : str
-        ``"import"`` (raised while reading and cutting the file) or ``"identification"``.
+        ``"import"`` (raised while reading and cutting the file), ``"identification"``, or
+        ``"map"`` (raised by the operating map when the test disagrees with its neighbours).
     informs_with_start_state : bool
         The flag only informs when the fit estimated the state the plant was in at the
         start of the window (the condition is then part of the model, not a risk to it).
@@ -147,6 +148,21 @@ _ALL = (
         "Rows with unreadable cells were dropped at import (counted in the import report).",
         SUSPECT,
         "import",
+    ),
+    # --- raised by the operating map (the test against its neighbours; never stored) ---------
+    Flag(
+        "outlier_against_trend",
+        "The test disagrees with the tests at neighbouring levels beyond its uncertainty (an "
+        "outlier against the trend); the map leaves it out.",
+        SUSPECT,
+        "map",
+    ),
+    Flag(
+        "outlier_against_trend_kept",
+        "The test disagrees with the trend beyond its uncertainty, but it is the only test at an "
+        "end of the range, where that cannot be told from curvature; the map keeps it.",
+        SUSPECT,
+        "map",
     ),
 )
 

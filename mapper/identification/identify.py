@@ -21,8 +21,8 @@ import numpy as np
 from mapper.constants import MIN_AFTER_STEP_SAMPLES, MIN_BASELINE_SAMPLES, MIN_FIT_SAMPLES
 from mapper.errors import DataError, IdentificationError
 from mapper.identification import estimators as est
-from mapper.identification.models import simulate_fopdt, simulate_integrating
 from mapper.identification.flags import flag_text, grade
+from mapper.identification.models import simulate_fopdt, simulate_integrating
 from mapper.identification.quality import (
     StepInfo,
     assess,
@@ -405,8 +405,8 @@ def _still_ramping(shape) -> bool:
 def _least_squares(period, v, y, step: StepInfo, start: est.Estimate):
     """FOPDT by least squares; the integrating model when the output never settles."""
     # a point-method start assumes one clean move; otherwise search a grid
-    single = step.n_moves == 1 and start.time_constant
-    guess = (start.time_constant, start.dead_time) if single else None
+    single = step.n_moves == 1 and start.time_constant is not None and start.time_constant > 0
+    guess = (start.time_constant, start.dead_time) if single and start.time_constant is not None else None
     fopdt = est.least_squares_fopdt(period, v, y, step.index, guess)
     if fopdt is None:
         return None
@@ -420,14 +420,15 @@ def _least_squares(period, v, y, step: StepInfo, start: est.Estimate):
 
 
 def _intervals(e: est.Estimate, cov, z) -> dict[str, tuple[float | None, float | None]]:
-    none = (None, None)
-    out = {"gain": none, "time_constant": none, "dead_time": none}
+    none: tuple[float | None, float | None] = (None, None)
+    out: dict[str, tuple[float | None, float | None]] = {"gain": none, "time_constant": none, "dead_time": none}
     if cov is None:
         return out
     sd = np.sqrt(np.clip(np.diag(cov), 0.0, np.inf))
     out["gain"] = (_finite(e.gain - z * sd[1]), _finite(e.gain + z * sd[1]))
     k = 2
     if e.model == "fopdt":
+        assert e.time_constant is not None  # an FOPDT estimate always carries one
         rel = sd[2] / e.time_constant  # log-scale interval stays positive
         if np.isfinite(rel) and rel < 50:
             out["time_constant"] = (

@@ -1,9 +1,11 @@
 """Judging a step test: where the input moved, and whether the test can be trusted.
 
-This module owns step finding (:func:`find_step`), robust noise estimates and the test
-checks that turn a test into ``good``, ``suspect`` or ``rejected`` with short snake_case
-flags and one sentence per flag. It does no model fitting; :mod:`mapper.identification.identify` calls
-:func:`assess` with the fitted model.
+This module owns the test checks that turn a test into ``good``, ``suspect`` or
+``rejected`` with short snake_case flags and one sentence per flag. Step finding and the
+noise estimate live in :mod:`mapper.signals` (``find_step``, ``median`` and ``noise_sd``
+are imported here for the callers that still reach them through this module). It does
+no model fitting; :mod:`mapper.identification.identify` calls :func:`assess` with the
+fitted model.
 
 The thresholds below are rules of thumb of the trade ("common practice"), not published
 limits; they are module constants so a site can see and argue with them.
@@ -12,7 +14,6 @@ limits; they are module constants so a site can see and argue with them.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
 
 import numpy as np
 
@@ -31,56 +32,12 @@ from mapper.constants import (
     MIN_RESPONSE_NOISE_BANDS,
     MIN_SAMPLES_PER_TIME_CONSTANT,
     MISFIT_FRACTION,
-    MOVE_FRACTION,
     NOISE_BAND_SDS,
     QUANTUM_LEVELS,
     SETTLE_TIME_CONSTANTS,
 )
+from mapper.signals import StepInfo, find_step, median, noise_sd  # call-through: use mapper.signals
 
-@dataclass(frozen=True)
-class StepInfo:
-    """Where and how the input moved in a test.
-
-    Attributes
-    ----------
-    time : float
-        Time (s) at which the main input move started; NaN if none was found.
-    size : float
-        ``u_after - u_before`` (input units); 0.0 if no move.
-    u_before, u_after : float
-        Settled input before and after the main move.
-    ramp_duration : float
-        Duration (s) of the move; 0.0 for a clean step.
-    n_moves : int
-        Number of distinct input moves of at least 10 % of the main one.
-    index : int
-        First sample at which the input has left ``u_before`` (``len(u)`` if none).
-    effective_time : float
-        Centroid in time of the input change: the instant of an ideal step with the
-        same first moment, used by the point methods for ramps.
-    """
-
-    time: float
-    size: float
-    u_before: float
-    u_after: float
-    ramp_duration: float
-    n_moves: int
-    index: int
-    effective_time: float
-
-    @property
-    def found(self) -> bool:
-        return self.n_moves > 0 and self.size != 0.0
-
-
-def median(x: np.ndarray) -> float:
-    """Median by partial sort (np.median's checks cost more than the sort on short data)."""
-    k = x.size // 2
-    if x.size % 2:
-        return float(np.partition(x, k)[k])
-    part = np.partition(x, (k - 1, k))
-    return 0.5 * float(part[k - 1] + part[k])
 
 
 def standard_deviation(x: np.ndarray) -> float:
@@ -89,159 +46,6 @@ def standard_deviation(x: np.ndarray) -> float:
         return float("nan")
     xc = x - x.sum() / x.size
     return math.sqrt(float(xc @ xc) / x.size)
-
-
-def noise_sd(x: np.ndarray) -> float:
-    """Robust standard deviation of the sample-to-sample noise of a signal.
-
-    Notes
-    -----
-    Median absolute deviation of the first differences, scaled by 1.4826 / sqrt(2)
-    (Hampel, 1974); steps and slow trends do not inflate it. For strongly
-    autocorrelated noise it underestimates the marginal spread, so model residuals
-    are preferred when a model is available.
-    """
-    x = np.asarray(x, dtype=float)
-    if x.size < 3:
-        return 0.0
-    dx = np.diff(x)
-    if 2 * np.count_nonzero(dx) < dx.size:  # more than half the steps are exactly zero
-        return 0.0
-    return 1.4826 * median(np.abs(dx - median(dx))) / np.sqrt(2.0)
-
-
-def _no_step(n: int, u: np.ndarray) -> StepInfo:
-    level = median(u) if n else float("nan")
-    return StepInfo(float("nan"), 0.0, level, level, 0.0, 0, n, float("nan"))
-
-
-def find_step(t: np.ndarray, u: np.ndarray) -> StepInfo:
-    """Find the main input move of a test, its size and the number of moves.
-
-    Parameters
-    ----------
-    t : ndarray
-        Sample times (s), uniform grid.
-    u : ndarray
-        Input samples.
-
-    Returns
-    -------
-    StepInfo
-        ``n_moves == 0`` and ``size == 0.0`` when the input does not move clearly.
-
-    Notes
-    -----
-    A moving-window difference of means (``w`` samples after minus ``w`` before)
-    marks the regions where the input changes by more than six times its noise; each
-    region's size is the difference of the medians just outside it. The start and
-    length of the main move come from its 10 % and 90 % crossings, so clean steps and
-    short actuator ramps are both handled.
-    """
-    t = np.asarray(t, dtype=float)
-    u = np.asarray(u, dtype=float)
-    n = u.size
-    if n < 6 or not np.all(np.isfinite(u)):
-        return _no_step(n, u)
-    scale = max(float(np.max(np.abs(u))), 1e-300)
-    dx = np.diff(u)
-    moving = np.flatnonzero(np.abs(dx) > 1e-9 * scale)
-    if 2 * moving.size < dx.size:
-        return _set_point_step(t, u, dx, moving)
-    w = int(np.clip(n // 20, 2, 10))
-    sigma = noise_sd(u)
-    # edge padding lets the window reach moves in the first and last samples
-    padded = np.concatenate([np.full(w, u[0]), u, np.full(w, u[-1])]) - u[0]
-    csum = np.concatenate([[0.0], np.cumsum(padded)])
-    ks = np.arange(0, n - 1)
-    kp = ks + w
-    diff_means = (csum[kp + 1 + w] - 2 * csum[kp + 1] + csum[kp + 1 - w]) / w
-    threshold = max(6.0 * sigma * np.sqrt(2.0 / w), 1e-9 * scale)
-    above = np.abs(diff_means) > threshold
-    if not above.any():
-        return _no_step(n, u)
-    edges = np.flatnonzero(np.diff(np.concatenate([[0], above.astype(int), [0]])))
-    regions = [(ks[s], ks[e - 1]) for s, e in zip(edges[::2], edges[1::2])]
-    moves = []  # (first index, last index, before level, after level)
-    for i, (k0, k1) in enumerate(regions):
-        lo = max(regions[i - 1][1] + 1 if i else 0, k0 - w + 1)
-        hi = min(regions[i + 1][0] + 1 if i + 1 < len(regions) else n, k1 + w + 1)
-        before = median(u[lo : k0 + 1])
-        after = median(u[k1 + 1 : hi]) if hi > k1 + 1 else float(u[-1])
-        moves.append((k0, k1, before, after))
-    sizes = np.array([m[3] - m[2] for m in moves])
-    biggest = float(np.max(np.abs(sizes)))
-    level_noise = 6.0 * sigma
-    keep = [m for m, s in zip(moves, sizes) if abs(s) >= max(MOVE_FRACTION * biggest, level_noise) and s != 0]
-    if not keep:
-        return _no_step(n, u)
-    j = next(i for i, m in enumerate(keep) if abs(m[3] - m[2]) >= 0.9 * biggest)
-    k0, k1 = keep[j][0], keep[j][1]
-    # levels from the whole steady stretches on either side of the main move
-    lo = keep[j - 1][1] + 1 if j > 0 else 0
-    hi = keep[j + 1][0] + 1 if j + 1 < len(keep) else n
-    before = median(u[lo : k0 + 1])
-    after = median(u[k1 + 1 : hi])
-    size = after - before
-    sign = np.sign(size)
-    p_lo = float(np.clip(4.0 * sigma / abs(size), 0.1, 0.4))
-    seg = slice(max(k0 - w + 1, 0), min(k1 + w + 1, n))
-    frac = (u[seg] - before) * sign / abs(size)
-    i_lo = seg.start + int(np.argmax(frac >= p_lo))
-    i_hi = seg.start + int(np.argmax(frac >= 1.0 - p_lo))
-    if i_hi < i_lo:
-        i_hi = i_lo
-    period = median(np.diff(t))
-    duration = (t[i_hi] - t[i_lo]) / (1.0 - 2.0 * p_lo)
-    start = t[i_lo] - p_lo * duration
-    if i_hi == i_lo:  # a clean step between two samples
-        duration, start = 0.0, float(t[i_lo])
-    index = int(np.searchsorted(t, start - 1e-9 * period))
-    # centroid of the input increments, each applied at its sample instant (ZOH)
-    lo_c = max(index - 1, 1)
-    hi_c = min(i_hi + 2, n)
-    inc = np.diff(u[lo_c - 1 : hi_c])
-    tot = float(inc.sum())
-    eff = float(np.dot(t[lo_c:hi_c], inc) / tot) if tot * sign > 0.5 * abs(size) else start
-    return StepInfo(
-        time=float(start),
-        size=float(size),
-        u_before=before,
-        u_after=after,
-        ramp_duration=float(max(duration, 0.0)),
-        n_moves=len(keep),
-        index=index,
-        effective_time=eff,
-    )
-
-
-def _set_point_step(t: np.ndarray, u: np.ndarray, dx: np.ndarray, moving: np.ndarray) -> StepInfo:
-    """Exact moves of a noise-free (set-point) input: runs of consecutive changes."""
-    n = u.size
-    if moving.size == 0:
-        return _no_step(n, u)
-    breaks = np.flatnonzero(np.diff(moving) > 1)
-    first = moving[np.concatenate([[0], breaks + 1])]  # last sample before each move
-    last = moving[np.concatenate([breaks, [moving.size - 1]])] + 1  # first sample after
-    sizes = u[last] - u[first]
-    biggest = float(np.max(np.abs(sizes)))
-    keep = np.flatnonzero((np.abs(sizes) >= MOVE_FRACTION * biggest) & (sizes != 0))
-    if keep.size == 0:
-        return _no_step(n, u)
-    j = int(keep[np.argmax(np.abs(sizes[keep]) >= 0.9 * biggest)])
-    k_a, k_b = int(first[j]), int(last[j])
-    inc = dx[k_a:k_b]
-    effective = float(np.dot(t[k_a + 1 : k_b + 1], inc) / inc.sum()) if inc.sum() else float(t[k_a + 1])
-    return StepInfo(
-        time=float(t[k_a + 1]),
-        size=float(sizes[j]),
-        u_before=float(u[k_a]),
-        u_after=float(u[k_b]),
-        ramp_duration=float(t[k_b] - t[k_a + 1]),
-        n_moves=int(keep.size),
-        index=k_a + 1,
-        effective_time=effective,
-    )
 
 
 # --- checks -------------------------------------------------------------------------

@@ -1,9 +1,9 @@
 """The store: one DuckDB file holding campaigns, tests, samples and fits.
 
-This is the only module that imports duckdb. It owns the schema (documented in
-``docs/store.md``), opening and locking, reading data files through DuckDB's own CSV
-and Parquet readers, atomic writes (a test or a fit is stored whole or not at all),
-and the public view ``test_params`` that anyone can query with the plain duckdb client.
+With :mod:`mapper.store.readers` (DuckDB's CSV and Parquet readers), this is the only
+code that imports duckdb. It owns the schema (documented in ``docs/store.md``; the fit
+columns and the public view ``test_params`` are generated from :mod:`mapper.columns`),
+opening and locking, and atomic writes (a test or a fit is stored whole or not at all).
 Every statement binds its values as parameters; no user text is formatted into SQL.
 """
 
@@ -14,7 +14,6 @@ import os
 import time
 from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
-from dataclasses import dataclass
 from pathlib import Path
 
 import duckdb
@@ -23,7 +22,13 @@ import pandas as pd
 import pyarrow as pa
 
 from mapper import __version__
-from mapper.errors import DataError, NotAStoreError, NotFoundError, StoreError, StoreInUseError
+from mapper.columns import (
+    FIT_LIST_COLUMNS,
+    FIT_VALUE_COLUMNS,
+    FIT_VALUE_NAMES,
+    TEST_PARAMS_NAMES,
+)
+from mapper.errors import NotAStoreError, NotFoundError, StoreError, StoreInUseError
 
 SCHEMA_VERSION = 1
 DEFAULT_STORE = "mapper.duckdb"
@@ -31,16 +36,50 @@ STORE_ENV = "MAPPER_DB"
 LOCK_WAIT_ENV = "MAPPER_LOCK_WAIT"
 _DUCKDB_MAGIC = b"DUCK"
 
-PARAM_COLUMNS = (
-    "test_id", "campaign", "file", "level", "direction", "input_step", "model",
-    "gain", "gain_lo", "gain_hi", "time_constant", "time_constant_lo", "time_constant_hi",
-    "dead_time", "dead_time_lo", "dead_time_hi", "nrmse", "quality", "flags",
-)
-FIT_VALUE_COLUMNS = (
-    "method", "model", "gain", "gain_lo", "gain_hi", "time_constant", "time_constant_lo",
-    "time_constant_hi", "dead_time", "dead_time_lo", "dead_time_hi", "nrmse", "quality",
-    "input_step", "step_time", "y_before", "y_after",
-)
+# DuckDB type of each kind of registered column (mapper.columns)
+_SQL_TYPES = {"number": "DOUBLE", "integer": "INTEGER", "text": "VARCHAR", "text_list": "VARCHAR[]"}
+_ARROW_TYPES = {"number": pa.float64(), "integer": pa.int32(), "text": pa.string(),
+                "text_list": pa.list_(pa.string())}
+
+# Columns of the public view that are not plain fit values: how each is formed.
+_VIEW_EXPRESSIONS = {
+    "test_id": "t.test_id",
+    "campaign": "c.name",
+    "file": "t.file",
+    "level": "coalesce(t.level_given, (f.y_before + f.y_after) / 2, t.level_estimate)",
+    "direction": ("coalesce(CASE WHEN f.input_step > 0 THEN 'up' WHEN f.input_step < 0 THEN 'down' END, "
+                  "t.direction)"),
+    "input_step": "coalesce(f.input_step, t.input_step)",
+    "flags": "list_concat(coalesce(t.import_flags, []::VARCHAR[]), coalesce(f.flags, []::VARCHAR[]))",
+}
+
+
+def _quoted(name: str) -> str:
+    """A registered column name as an SQL identifier (some, like ``offset``, are keywords)."""
+    return f'"{name}"'
+
+
+def _fits_table_sql() -> str:
+    """CREATE TABLE for ``fits``, its value columns generated from the registry."""
+    registered = [f"{_quoted(c.name)} {_SQL_TYPES[c.kind]}" for c in (*FIT_VALUE_COLUMNS, *FIT_LIST_COLUMNS)]
+    return ("CREATE TABLE IF NOT EXISTS fits (test_id INTEGER PRIMARY KEY, " + ", ".join(registered)
+            + ", settings VARCHAR, tool_version VARCHAR, fitted_at TIMESTAMP DEFAULT current_timestamp)")
+
+
+def _view_sql() -> str:
+    """The public view ``test_params``, its columns in the registry's order."""
+    fit_names = set(FIT_VALUE_NAMES)
+    selected = []
+    for name in TEST_PARAMS_NAMES:
+        if name in _VIEW_EXPRESSIONS:
+            selected.append(f"{_VIEW_EXPRESSIONS[name]} AS {_quoted(name)}")
+        elif name in fit_names:
+            selected.append(f"f.{_quoted(name)}")
+        else:
+            raise RuntimeError(f"view column {name} has no source")  # a registry edit missed here
+    return ("CREATE OR REPLACE VIEW test_params AS SELECT " + ", ".join(selected)
+            + " FROM tests t JOIN campaigns c USING (campaign_id) LEFT JOIN fits f USING (test_id)")
+
 
 _SCHEMA = [
     """CREATE TABLE IF NOT EXISTS mapper_meta (key VARCHAR PRIMARY KEY, value VARCHAR)""",
@@ -83,50 +122,9 @@ _SCHEMA = [
         t DOUBLE NOT NULL,
         u DOUBLE NOT NULL,
         y DOUBLE NOT NULL)""",
-    """CREATE TABLE IF NOT EXISTS fits (
-        test_id INTEGER PRIMARY KEY,
-        method VARCHAR, model VARCHAR,
-        gain DOUBLE, gain_lo DOUBLE, gain_hi DOUBLE,
-        time_constant DOUBLE, time_constant_lo DOUBLE, time_constant_hi DOUBLE,
-        dead_time DOUBLE, dead_time_lo DOUBLE, dead_time_hi DOUBLE,
-        nrmse DOUBLE, quality VARCHAR, flags VARCHAR[], notes VARCHAR[],
-        input_step DOUBLE, step_time DOUBLE, y_before DOUBLE, y_after DOUBLE,
-        settings VARCHAR, tool_version VARCHAR,
-        fitted_at TIMESTAMP DEFAULT current_timestamp)""",
-    """CREATE OR REPLACE VIEW test_params AS
-        SELECT t.test_id, c.name AS campaign, t.file,
-               coalesce(t.level_given, (f.y_before + f.y_after) / 2, t.level_estimate) AS level,
-               coalesce(CASE WHEN f.input_step > 0 THEN 'up' WHEN f.input_step < 0 THEN 'down' END,
-                        t.direction) AS direction,
-               coalesce(f.input_step, t.input_step) AS input_step,
-               f.model, f.gain, f.gain_lo, f.gain_hi,
-               f.time_constant, f.time_constant_lo, f.time_constant_hi,
-               f.dead_time, f.dead_time_lo, f.dead_time_hi, f.nrmse, f.quality,
-               list_concat(coalesce(t.import_flags, []::VARCHAR[]),
-                           coalesce(f.flags, []::VARCHAR[])) AS flags
-        FROM tests t JOIN campaigns c USING (campaign_id) LEFT JOIN fits f USING (test_id)""",
+    _fits_table_sql(),
+    _view_sql(),
 ]
-
-
-@dataclass(frozen=True)
-class ScannedFile:
-    """Columns read from a data file by DuckDB's reader, before any interpretation."""
-
-    path: Path
-    columns: tuple[str, ...]
-    types: dict[str, str]
-    values: dict[str, np.ndarray]
-
-    @property
-    def delimiter(self) -> str | None:
-        """The CSV delimiter DuckDB's sniffer finds (None for Parquet); asked only when needed."""
-        if self.path.suffix.lower() in (".parquet", ".pq"):
-            return None
-        try:
-            return _reader_connection().execute(
-                "SELECT delimiter FROM sniff_csv(?)", [str(self.path)]).fetchone()[0]
-        except duckdb.Error:
-            return None
 
 
 def default_store_path() -> Path:
@@ -218,6 +216,17 @@ class Store:
         if not exists:
             self._create_atomically()
         self.connection = _connect(self.path, read_only, wait)
+        if exists and not read_only:
+            self._add_registered_columns()
+
+    def _add_registered_columns(self) -> None:
+        """Give a store made by an earlier mapper the fit columns registered since."""
+        present = {r[0] for r in self.connection.execute(
+            "SELECT column_name FROM information_schema.columns WHERE table_name = 'fits'").fetchall()}
+        missing = [c for c in (*FIT_VALUE_COLUMNS, *FIT_LIST_COLUMNS) if c.name not in present]
+        for spec in missing:
+            column_sql = f"{_quoted(spec.name)} {_SQL_TYPES[spec.kind]}"  # registry name and type, no user text
+            self.connection.execute("ALTER TABLE fits ADD COLUMN " + column_sql)
 
     def _check_existing(self, wait: float) -> None:
         # Inspect read-only first so that a foreign DuckDB database is never written to.
@@ -395,21 +404,18 @@ class Store:
         """Store fit rows (``FitResult.to_row()`` plus ``test_id``) in one transaction."""
         if not rows:
             return
-        numeric = [n for n in FIT_VALUE_COLUMNS if n not in ("method", "model", "quality")]
         columns: dict[str, pa.Array] = {"test_id": pa.array([int(r["test_id"]) for r in rows], pa.int32())}
-        for name in FIT_VALUE_COLUMNS:
-            values = [r.get(name) for r in rows]
-            if name in numeric:
+        for spec in (*FIT_VALUE_COLUMNS, *FIT_LIST_COLUMNS):
+            values = [r.get(spec.name) for r in rows]
+            if spec.kind == "number":
                 values = [None if v is None or not np.isfinite(float(v)) else float(v) for v in values]
-                columns[name] = pa.array(values, pa.float64())
-            else:
-                columns[name] = pa.array(values, pa.string())
-        columns["flags"] = pa.array([list(r.get("flags") or []) for r in rows], pa.list_(pa.string()))
-        columns["notes"] = pa.array([list(r.get("notes") or []) for r in rows], pa.list_(pa.string()))
+            elif spec.kind == "text_list":
+                values = [list(v or []) for v in values]
+            columns[spec.name] = pa.array(values, _ARROW_TYPES[spec.kind])
         columns["settings"] = pa.array([json.dumps(r.get("settings") or {}, default=str) for r in rows])
         columns["tool_version"] = pa.array([__version__] * len(rows))
         table = pa.table(columns)
-        names = ", ".join(table.column_names)  # constant column names, no user text
+        names = ", ".join(map(_quoted, table.column_names))  # registry names, no user text
         with self.transaction() as con:
             con.register("incoming_fits", table)
             try:
@@ -433,7 +439,7 @@ class Store:
             "SELECT test_id, t, u, y FROM samples WHERE test_id IN (SELECT unnest(?::INTEGER[])) "
             "ORDER BY test_id, sample_index", [list(map(int, test_ids))]).fetchnumpy()
         ids = np.asarray(arrays["test_id"])
-        result = {}
+        result: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
         if len(ids) == 0:
             return result
         cuts = np.flatnonzero(np.diff(ids)) + 1
@@ -485,151 +491,8 @@ class Store:
         return {int(r[0]): float(r[1]) for r in rows if r[1] is not None}
 
     def counts(self) -> dict[str, int]:
-        con = self.connection
-        return {
-            "campaigns": con.execute("SELECT count(*) FROM campaigns").fetchone()[0],
-            "tests": con.execute("SELECT count(*) FROM tests").fetchone()[0],
-            "samples": con.execute("SELECT count(*) FROM samples").fetchone()[0],
-            "fits": con.execute("SELECT count(*) FROM fits").fetchone()[0],
-        }
-
-
-# -- reading data files through DuckDB's own readers -------------------------------------
-_reader = None
-
-
-def _reader_connection() -> duckdb.DuckDBPyConnection:
-    global _reader
-    if _reader is None:
-        _reader = duckdb.connect()
-    return _reader
-
-
-def scan_file(path: Path, columns: Sequence[str], *, as_text: bool = False,
-              decimal_comma: bool = False) -> ScannedFile:
-    """Read the named columns of a CSV or Parquet file with DuckDB's reader.
-
-    CSV delimiter, header and column types are sniffed by DuckDB. ``as_text`` reads every
-    column as text (used to locate a bad cell and to recognise common export quirks).
-
-    Raises
-    ------
-    DataError
-        The file cannot be read, holds no rows, or lacks a named column.
-    """
-    con = _reader_connection()
-    suffix = path.suffix.lower()
-    if suffix in (".parquet", ".pq"):
-        relation_sql, args = "read_parquet(?)", [str(path)]
-    else:
-        options = ", all_varchar = true" if as_text else ""
-        options += ", decimal_separator = ','" if decimal_comma else ""
-        relation_sql, args = f"read_csv(?{options})", [str(path)]
-    try:
-        cursor = con.execute(f"SELECT * FROM {relation_sql}", args)
-        described = [(d[0], str(d[1])) for d in cursor.description]
-    except duckdb.Error as exc:
-        text = str(exc)
-        if "not utf-8 encoded" in text.lower():
-            where = text.splitlines()[0].split("Error: ", 1)[-1]
-            raise DataError(f"{path}: holds bytes that are not UTF-8 text ({where})",
-                            hint="save or export the file again as UTF-8 text") from None
-        parquet = suffix in (".parquet", ".pq")
-        raise DataError(f"{path}: cannot be read as {'Parquet' if parquet else 'CSV'}: "
-                        f"{text.splitlines()[0]}",
-                        hint="the Parquet file is damaged or not Parquet; export it again" if parquet
-                        else "check that the file is a CSV export and not empty") from None
-    present = tuple(r[0] for r in described)
-    types = {r[0]: r[1] for r in described}
-    missing = [c for c in columns if c not in present]
-    if missing:
-        raise DataError(
-            f"{path}: column '{missing[0]}' not found; columns present: {', '.join(present)}",
-            hint="name the columns as they appear in the header ([columns] in campaign.toml "
-                 "or --time/--input/--output)")
-    if len(present) < 2 and not as_text:
-        raise DataError(f"{path}: only one column ('{present[0]}') was found",
-                        hint="check the delimiter; comma, semicolon and tab are recognised")
-    if any('"' in c for c in columns):
-        raise DataError(f"{path}: column names with double quotes are not supported",
-                        hint="rename the column in the header")
-    try:
-        result = cursor.fetchnumpy()  # one pass through DuckDB's reader, columnar
-    except duckdb.ConversionException:
-        if as_text or suffix in (".parquet", ".pq"):
-            raise DataError(f"{path}: cannot be read", hint="export the file again") from None
-        # text beyond the sniffer's sample: read as text so the bad cell can be named
-        return scan_file(path, columns, as_text=True)
-    except duckdb.Error as exc:
-        hint = ("the Parquet file is damaged; export it again" if suffix in (".parquet", ".pq")
-                else "look for a stray line or an unquoted delimiter in the file")
-        raise DataError(f"{path}: cannot be read: {str(exc).splitlines()[0]}", hint=hint) from None
-    wanted = list(dict.fromkeys(columns))
-    values = {c: result[c] for c in wanted}
-    return ScannedFile(path=path, columns=present, types=types, values=values)
-
-
-_SOURCE_COLUMN = "__mapper_source_file"
-
-
-def scan_many(paths: Sequence[Path], columns: Sequence[str]) -> dict[Path, ScannedFile] | None:
-    """Read several CSV files of one layout in a single pass of DuckDB's reader.
-
-    Reading a batch at once spares the reader's per-file start-up. Returns None when the
-    files do not share one layout (or anything else goes wrong); the caller then reads them
-    one by one with :func:`scan_file`, which names the culprit.
-    """
-    if not paths or any(p.suffix.lower() in (".parquet", ".pq") for p in paths):
-        return None
-    con = _reader_connection()
-    try:
-        cursor = con.execute("SELECT * FROM read_csv(?, filename = ?)",
-                             [[str(p) for p in paths], _SOURCE_COLUMN])
-        described = [(d[0], str(d[1])) for d in cursor.description]
-        arrays = cursor.fetchnumpy()
-    except duckdb.Error:
-        return None
-    present = tuple(name for name, _ in described if name != _SOURCE_COLUMN)
-    if len(present) < 2 or any(c not in present for c in columns) or any('"' in c for c in columns):
-        return None
-    types = dict(described)
-    sources = np.asarray(arrays[_SOURCE_COLUMN], dtype=object)
-    if len(sources) == 0:
-        return None
-    cuts = np.flatnonzero(sources[1:] != sources[:-1]) + 1
-    starts = np.concatenate([[0], cuts])
-    ends = np.concatenate([cuts, [len(sources)]])
-    by_name = {str(p): p for p in paths}
-    result: dict[Path, ScannedFile] = {}
-    for a, b in zip(starts, ends):
-        path = by_name.get(str(sources[a]))
-        if path is None or path in result:
-            return None
-        values = {c: arrays[c][a:b] for c in dict.fromkeys(columns)}
-        result[path] = ScannedFile(path=path, columns=present, types=types, values=values)
-    if len(result) != len(paths):
-        return None  # a file without rows: let the one-by-one reader say so
-    return result
-
-
-def scan_first_text(path: Path, column: str) -> str | None:
-    """The first value of ``column`` as written in the file (to keep a timestamp's zone)."""
-    if path.suffix.lower() in (".parquet", ".pq"):
-        return None
-    con = _reader_connection()
-    try:
-        row = con.execute("SELECT * FROM read_csv(?, all_varchar = true) LIMIT 1", [str(path)]).df()
-    except duckdb.Error:
-        return None
-    if column not in row.columns or row.empty:
-        return None
-    return str(row[column].iloc[0])
-
-
-def bare_scan(paths: Sequence[Path]) -> int:
-    """Count the rows of every file with DuckDB's reader, storing nothing (benchmark baseline)."""
-    con = _reader_connection()
-    total = 0
-    for path in paths:
-        total += con.execute("SELECT count(*) FROM read_csv(?)", [str(path)]).fetchone()[0]
-    return total
+        row = self.connection.execute(
+            "SELECT (SELECT count(*) FROM campaigns), (SELECT count(*) FROM tests), "
+            "(SELECT count(*) FROM samples), (SELECT count(*) FROM fits)").fetchone()
+        assert row is not None  # an aggregate query always returns one row
+        return dict(zip(("campaigns", "tests", "samples", "fits"), map(int, row)))

@@ -25,7 +25,8 @@ import pandas as pd
 from mapper.constants import MIN_FILE_SAMPLES
 from mapper.errors import CampaignFileError, DataError, MapperError
 from mapper.store.campaign import Campaign, TestEntry, load_campaign
-from mapper.store.database import ScannedFile, Store, scan_file, scan_first_text, scan_many
+from mapper.store.database import Store
+from mapper.store.readers import ScannedFile, scan_file, scan_first_text, scan_many
 from mapper.store.segment import Signals, split_signals
 
 MAX_MAGNITUDE = 1e12
@@ -156,7 +157,7 @@ def _parse_time(path: Path, column: str, raw: np.ndarray, kind: str, seconds_per
             raise DataError(f"{path}: empty timestamp in column '{column}' at line {_line(i, offset)}",
                             hint="fill or remove the incomplete rows; gaps in a log must not be blank cells")
     elif any(kind.startswith(t) for t in _NUMERIC_TYPES):
-        values = np.ma.filled(np.ma.asarray(raw, dtype=float), np.nan)
+        values: np.ndarray = np.ma.filled(np.ma.asarray(raw, dtype=float), np.nan)
         _check_finite(path, column, values, offset)
         return (values - values[0]) * seconds_per_unit, None, None
     else:  # text: numbers written oddly, or ISO-8601 timestamps
@@ -179,8 +180,8 @@ def _parse_time(path: Path, column: str, raw: np.ndarray, kind: str, seconds_per
                 hint="use ISO-8601 timestamps (2026-03-04T10:15:00, optionally with +01:00 or Z) "
                      "or numeric time in seconds")
     ns = stamps.dt.tz_convert("UTC").dt.tz_localize(None) if stamps.dt.tz is not None else stamps
-    ns = ns.to_numpy(dtype="datetime64[ns]").astype(np.int64)
-    seconds = (ns - ns[0]) / 1e9
+    nanoseconds = ns.to_numpy(dtype="datetime64[ns]").astype(np.int64)
+    seconds = (nanoseconds - nanoseconds[0]) / 1e9
     first = stamps.iloc[0]
     zone = str(first.tzinfo) if first.tzinfo is not None else None
     if kind.startswith("VARCHAR") or not kind.startswith("TIMESTAMP"):
@@ -221,7 +222,7 @@ def read_signals(path: Path, time_column: str, input_column: str, output_column:
         raw_time = scanned.values[time_column]
         # with another delimiter a comma in a text time column can only be a decimal comma
         decimal_comma = (kinds[time_column].startswith("VARCHAR")
-                         and (scanned.delimiter or ",") != ",")
+                         and (scanned.sniff_delimiter() or ",") != ",")
     else:
         text = scan_file(path, columns, as_text=True)
         values = {c: _as_objects(text.values[c]) for c in columns}
@@ -229,7 +230,7 @@ def read_signals(path: Path, time_column: str, input_column: str, output_column:
         if n == 0:
             raise DataError(f"{path}: header only, no data rows", hint="export the test again")
         # look well past the first rows: an export may start on whole numbers ("50;20")
-        decimal_comma = (scanned.delimiter or ",") != "," and any(
+        decimal_comma = (scanned.sniff_delimiter() or ",") != "," and any(
             bool(_DECIMAL_COMMA.match(str(v))) for c in columns for v in values[c][:500])
         if n > 2 and _looks_like_units_row(values, (input_column, output_column), decimal_comma):
             values = {c: v[1:] for c, v in values.items()}
@@ -397,7 +398,8 @@ def import_campaign(store: Store, campaign: Campaign,
             progress(number, total, entry.file)
         if number > scanned_up_to:
             # read the next batch of new files in one pass of the reader
-            upcoming, size = [], 0
+            upcoming: list[Path] = []
+            size = 0
             for i, e in enumerate(campaign.tests[number - 1:], start=number):
                 if len(upcoming) >= SCAN_FILES or size >= SCAN_BYTES:
                     break

@@ -14,7 +14,7 @@ import numpy as np
 
 from mapper.constants import MIN_FILE_SAMPLES
 from mapper.errors import DataError
-from mapper.identification.quality import median
+from mapper.signals import find_moves, median, noise_sd
 
 
 @dataclass(frozen=True)
@@ -59,47 +59,6 @@ def uniform_grid(t: np.ndarray, u: np.ndarray, y: np.ndarray, period: float | No
     return grid, u_grid, y_grid, period, flags
 
 
-def _noise(values: np.ndarray) -> float:
-    diffs = np.diff(values)
-    return float(1.4826 * median(np.abs(diffs - median(diffs))) / np.sqrt(2))
-
-
-def find_moves(u: np.ndarray) -> list[tuple[int, int]]:
-    """Index pairs (start, end) of each distinct input move.
-
-    A move is a change of the held input level by more than a threshold set from the
-    input's own sample-to-sample noise (eight robust standard deviations) and 2 % of its
-    range, so noise on a flat input never makes a move. Short actuator ramps are one move;
-    pieces of one ramp in the same direction with no plateau between are merged.
-    """
-    span = float(np.ptp(u))
-    if span == 0:
-        return []
-    threshold = max(8 * _noise(u), 0.02 * span, 1e-12 * max(1.0, float(np.max(np.abs(u)))))
-    moves: list[tuple[int, int, float]] = []
-    reference = float(median(u[: min(5, len(u))]))
-    k = 1
-    n = len(u)
-    steps = np.diff(u)
-    while k < n:
-        away = np.flatnonzero(np.abs(u[k:] - reference) > threshold)
-        if away.size == 0:
-            break
-        k += int(away[0])
-        start = k - 1
-        # the move lasts while the input keeps travelling in the same direction
-        sign = float(np.sign(u[k] - reference))
-        stopped = np.flatnonzero(sign * steps[k:] <= threshold / 4)
-        end = k + int(stopped[0]) if stopped.size else n - 1
-        new_reference = float(median(u[end: min(end + 5, n)]))
-        if moves and moves[-1][1] >= start - 2 and moves[-1][2] == sign:
-            start = moves.pop()[0]
-        moves.append((start, end, sign))
-        reference = new_reference
-        k = end + 1
-    return [(s, e) for s, e, _ in moves]
-
-
 def _settled_at_end(y: np.ndarray, response: float) -> bool:
     tail = y[int(0.75 * len(y)):]
     if len(tail) < 4:
@@ -107,7 +66,7 @@ def _settled_at_end(y: np.ndarray, response: float) -> bool:
     x = np.arange(len(tail))
     slope = np.polyfit(x, tail, 1)[0]
     drift = abs(slope) * len(tail)
-    return drift <= max(3 * _noise(y), 0.05 * abs(response))
+    return drift <= max(3 * noise_sd(y), 0.05 * abs(response))
 
 
 def split_signals(signals: Signals, *, windows: Sequence[tuple[float, float]] = (),
@@ -127,7 +86,7 @@ def split_signals(signals: Signals, *, windows: Sequence[tuple[float, float]] = 
             hi = int(np.searchsorted(t, end * seconds_per_unit, side="right"))
             pieces.append((lo, hi, ["explicit_window"]))
     else:
-        moves = find_moves(u)
+        moves = [(m.start, m.end) for m in find_moves(u)]
         if not moves:
             raise DataError("the input holds no move larger than its noise",
                             hint="check the input column; a step test needs a clear input step")
@@ -137,7 +96,7 @@ def split_signals(signals: Signals, *, windows: Sequence[tuple[float, float]] = 
             flags = ["several_input_moves"] if len(moves) > 1 else []
             pieces.append((0, len(t), flags))
         else:
-            for i, (start, end) in enumerate(moves):
+            for i, (start, _end) in enumerate(moves):
                 before = 0 if i == 0 else moves[i - 1][1] + 1
                 lo = start - max((start - before) // 2, min(MIN_FILE_SAMPLES // 2, start - before)) if i else 0
                 hi = moves[i + 1][0] if i + 1 < len(moves) else len(t)

@@ -24,6 +24,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from mapper.signals import step_time
+
 #: Target number of samples kept per test in a chart.
 POINTS_PER_TEST = 300
 
@@ -115,17 +117,11 @@ def decimate(t: np.ndarray, y: np.ndarray, points: int = POINTS_PER_TEST) -> np.
 
 
 def step_time_from_input(t: np.ndarray, u: np.ndarray) -> float | None:
-    """Time at which the input first covers half its total change, or None if flat."""
-    t = np.asarray(t, dtype=float)
-    u = np.asarray(u, dtype=float)
-    if len(u) < 2:
-        return None
-    change = u[-1] - u[0]
-    spread = np.nanmax(u) - np.nanmin(u)
-    if not np.isfinite(change) or spread == 0 or abs(change) < 1e-12:
-        return None
-    moved = np.nonzero(np.abs(u - u[0]) >= 0.5 * abs(change))[0]
-    return float(t[moved[0]]) if len(moved) else None
+    """Time at which the input covers half of its largest move, or None if flat.
+
+    A call-through to :func:`mapper.signals.step_time`, the one move finder.
+    """
+    return step_time(t, u)
 
 
 def settled_change(t: np.ndarray, y: np.ndarray, step_time: float) -> tuple[float, float]:
