@@ -51,10 +51,10 @@ if TYPE_CHECKING:
         step_test_chart,
     )
     from mapper.presentation.report import ReportInfo, write_report
+    from mapper.signals import find_moves
     from mapper.store.campaign import Campaign, TestEntry, load_campaign
     from mapper.store.database import Store
     from mapper.store.ingest import ImportSummary, import_sources, read_signals
-    from mapper.signals import find_moves
     from mapper.store.segment import split_signals, uniform_grid
 
 _HOMES: dict[str, str] = {

@@ -24,6 +24,7 @@ __all__ = [
     "MOVE_SPAN_FRACTION",
     "RAMP_GAP_SAMPLES",
     "BLIP_SAMPLES",
+    "SHORT_PLATEAU_SAMPLES",
     "QUANTUM_LEVELS",
     "CLIP_SPAN_FRACTION",
     "MISFIT_FRACTION",
@@ -53,6 +54,7 @@ MOVE_NOISE_SDS = 8.0  # a move changes the held input by more than this many noi
 MOVE_SPAN_FRACTION = 0.02  # ...and by more than this share of the input's range
 RAMP_GAP_SAMPLES = 2  # ramp pieces one way with at most this many samples between: one move
 BLIP_SAMPLES = 5  # a move reversed within this many samples is one event (a blip)
+SHORT_PLATEAU_SAMPLES = MIN_FILE_SAMPLES  # input held for fewer samples before or after a move
 QUANTUM_LEVELS = 50  # fewer output levels than this across the response: quantised
 CLIP_SPAN_FRACTION = 0.005  # within 0.5 % of an instrument limit counts as at the limit
 MISFIT_FRACTION = 0.10  # systematic residual beyond 10 % of the response: poor fit

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import os
 import subprocess
 import sys
@@ -65,15 +66,27 @@ def write_campaign(folder: Path, tests: list[dict], name: str = "Trial campaign"
 
 
 def run_mapper(*args, db: Path | None = None, cwd: Path | None = None, env: dict | None = None,
-               timeout: float = 300) -> subprocess.CompletedProcess:
-    """Run the installed console command (the real entry point)."""
-    command = [str(ENTRY_POINT)] if ENTRY_POINT.exists() else [sys.executable, "-m", "mapper.app.cli"]
-    if db is not None:
-        command += ["--db", str(db)]
-    full_env = dict(os.environ, **(env or {}))
-    full_env.setdefault("MAPPER_LOCK_WAIT", "2")
-    return subprocess.run(command + [str(a) for a in args], capture_output=True, text=True,
-                          cwd=cwd, env=full_env, timeout=timeout)
+               timeout: float = 300, real_process: bool = False) -> subprocess.CompletedProcess:
+    """Run a mapper command and return its exit status, stdout and stderr.
+
+    By default the command runs in this process through typer's test runner (no interpreter
+    start-up per call, so the suite stays quick); ``real_process=True`` runs the installed
+    console command instead, for the checks that need the real entry point or a second process.
+    """
+    argv = (["--db", str(db)] if db is not None else []) + [str(a) for a in args]
+    overlay = {"MAPPER_LOCK_WAIT": os.environ.get("MAPPER_LOCK_WAIT", "2"), **(env or {})}
+    if real_process:
+        command = [str(ENTRY_POINT)] if ENTRY_POINT.exists() else [sys.executable, "-m", "mapper.app.cli"]
+        return subprocess.run(command + argv, capture_output=True, text=True,
+                              cwd=cwd, env=dict(os.environ, **overlay), timeout=timeout)
+    from typer.testing import CliRunner
+
+    from mapper.app.cli import app
+    with contextlib.chdir(cwd) if cwd is not None else contextlib.nullcontext():
+        result = CliRunner().invoke(app, argv, env=overlay, prog_name="mapper")
+    if result.exception is not None and not isinstance(result.exception, SystemExit):
+        raise result.exception  # a crash the entry point would print as a traceback: show it here
+    return subprocess.CompletedProcess(["mapper", *argv], result.exit_code, result.stdout, result.stderr)
 
 
 @pytest.fixture
@@ -83,3 +96,25 @@ def small_campaign(tmp_path: Path) -> Path:
         dict(level=30.0), dict(level=30.0, u0=60.0, step=-10.0),
         dict(level=60.0, gain=3.0), dict(level=60.0, gain=3.0, u0=60.0, step=-10.0, note="after service"),
     ])
+
+
+@pytest.fixture(scope="session")
+def demo_run(tmp_path_factory) -> dict:
+    """`mapper demo` run once for the whole session (it is the slowest command), from a folder
+    that holds the user's own store while ``$MAPPER_DB`` names another one.
+
+    Returns the output folder, the command's result, and both stores with their bytes before
+    the run, so tests can check the demo's outputs and that neither store was touched.
+    """
+    base = tmp_path_factory.mktemp("demo")
+    campaign = write_campaign(base / "campaign", [dict(level=30.0), dict(level=60.0, gain=3.0)])
+    work = base / "work"
+    work.mkdir()
+    own, named = work / "mapper.duckdb", base / "named.duckdb"
+    for store in (own, named):
+        imported = run_mapper("import", campaign, db=store)
+        assert imported.returncode == 0, imported.stderr
+    before = {own: own.read_bytes(), named: named.read_bytes()}
+    result = run_mapper("demo", "--out", "demo_out", cwd=work, env={"MAPPER_DB": str(named)}, timeout=600)
+    assert result.returncode == 0, result.stdout + result.stderr
+    return {"out": work / "demo_out", "result": result, "work": work, "stores_before": before}

@@ -78,7 +78,7 @@ def identified_row(test_id, level, direction, t, q, h, *, campaign="tank"):
 
 
 def tank_campaign(levels, *, directions=("up", "down"), disturbed=None, wander=None, seed=0, campaign="tank",
-                  area=AREA, c=OUTFLOW):
+                  area=AREA, c=OUTFLOW, noise=0.01):
     """Identified campaign: one test per level and direction; ``disturbed=(level, direction, load)``
     gives that test a load step of ``load`` (fraction of inflow) one time constant into the response."""
     rows = []
@@ -90,6 +90,6 @@ def tank_campaign(levels, *, directions=("up", "down"), disturbed=None, wander=N
                 load = (30.0 + DELAY + tau, disturbed[2])
             duration = 40.0 + 8.0 * 2 * area * math.sqrt(level) / c  # eight time constants after the step
             t, q, h = simulate_step(level, direction, load=load, wander=wander, seed=seed + len(rows),
-                                    area=area, c=c, duration=duration)
+                                    area=area, c=c, duration=duration, noise=noise)
             rows.append(identified_row(len(rows) + 1, level, direction, t, q, h, campaign=campaign))
     return pd.DataFrame(rows)

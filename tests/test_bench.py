@@ -4,9 +4,11 @@ from __future__ import annotations
 
 import json
 
+import pytest
 from conftest import run_mapper
 
 
+@pytest.mark.slow  # runs the whole benchmark: a dozen processes
 def test_bench_tiny_run_reports_every_field(tmp_path):
     out = tmp_path / "bench.json"
     result = run_mapper("bench", "--tests", "4", "--samples", "240", "--scale", "2", "--json", out,

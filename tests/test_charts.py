@@ -419,3 +419,33 @@ def test_overlay_from_series_equals_overlay_chart(campaign):
     direct = spec_of(charts.overlay_chart(tests))
     assert inline_datasets(spec_of(charts.overlay_chart_from_series(series))) == inline_datasets(direct)
     assert charts.overlay_series({**tests[0], "u": np.full(800, 40.0), "step_time": None}) is None
+
+
+def _closed_loop_verdict():
+    from mapper.analysis.responses import response_rows
+
+    points = [{"level": lv, "gain": 2.0 * lv / 20, "time_constant": 10.0 * lv / 20, "dead_time": 1.0,
+               "kc_local": 2.5, "ti_local": 8.0, "ms": 1.6, "iae_ratio": 1.2, "kc": 2.0, "ti": 9.0}
+              for lv in (20.0, 35.0, 50.0, 65.0, 80.0)]
+    verdict = {"decision": "schedule", "controller": {"kc": 2.0, "ti": 9.0}, "points": points,
+               "schedule_points": [dict(p, kc=2.4, ti=8.0, iae_ratio=1.05) for p in points],
+               "ms_max": 1.8, "slowdown_max": 2.0}
+    verdict["responses"] = response_rows(verdict)
+    return verdict
+
+
+def test_closed_loop_chart_three_levels_two_steps_three_controllers():
+    verdict = _closed_loop_verdict()
+    rows = verdict["responses"]
+    # lowest, middle and highest tested level; load and setpoint step; single, schedule and local
+    assert sorted({r["level"] for r in rows}) == [20.0, 50.0, 80.0]
+    assert {r["step"] for r in rows} == {"load", "setpoint"}
+    assert {r["controller"] for r in rows} == {"single", "schedule", "local"}
+    setpoint = [r for r in rows if r["step"] == "setpoint" and r["controller"] == "local"]
+    assert max(r["output"] for r in setpoint) > 0.9  # reaches the setpoint
+    spec = spec_of(charts.closed_loop_chart(verdict, units=UNITS))
+    assert spec["facet"]["column"]["field"] == "panel" and spec["facet"]["row"]["field"] == "step_name"
+    assert "Ms <= 1.8" in spec["title"]["subtitle"][0] and "2 times" in spec["title"]["subtitle"][0]
+    encoding = spec["spec"]["encoding"]
+    assert encoding["strokeDash"]["field"] == "controller"  # not by colour alone
+    assert encoding["color"]["scale"]["domain"] == ["single", "schedule", "local"]

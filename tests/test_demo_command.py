@@ -1,9 +1,10 @@
-"""`mapper demo` end to end through the real entry point, then the analysis commands on its store."""
+"""`mapper demo` end to end (once per session, see conftest.demo_run), then the analysis commands on its store."""
 
 from __future__ import annotations
 
 import csv
 import json
+import re
 from pathlib import Path
 
 import duckdb
@@ -17,15 +18,15 @@ OLD = "Hot-water exchanger E-3, before overhaul, 2024"
 
 
 @pytest.fixture(scope="module")
-def demo(tmp_path_factory) -> Path:
-    cwd = tmp_path_factory.mktemp("demo_cwd")
-    own = cwd / "mapper.duckdb"  # the user's own store: the demo must not touch it
-    own.write_bytes(b"someone's own file")
-    result = run_mapper("demo", "--out", "demo_out", cwd=cwd)
-    assert result.returncode == 0, result.stderr
-    assert own.read_bytes() == b"someone's own file"
-    (cwd / "stdout.txt").write_text(result.stdout)
-    return cwd / "demo_out"
+def demo(demo_run) -> Path:
+    """The demo's output folder (the demo itself runs once per session: conftest.demo_run)."""
+    return demo_run["out"]
+
+
+def test_demo_leaves_the_users_stores_alone(demo_run):
+    for store, before in demo_run["stores_before"].items():
+        assert store.read_bytes() == before, store
+    assert not (demo_run["work"] / "mapper.duckdb.wal").exists()
 
 
 def test_demo_stores_every_sample_test(demo):
@@ -47,11 +48,15 @@ def test_demo_flags_the_imperfect_tests(demo):
     assert all(quality[f] == "good" for f in clean), {f: rows[f] for f in clean if quality[f] != "good"}
 
 
-def test_demo_writes_verdict_report_and_schedule(demo):
-    stdout = (demo.parent / "stdout.txt").read_text()
-    assert "Verdict: schedule" in stdout
+def test_demo_writes_verdict_report_and_schedule(demo, demo_run):
+    assert "Verdict: schedule" in demo_run["result"].stdout
     report = (demo / "report.html").read_text()
-    assert "<svg" in report or "vega" in report.lower()
+    # every chart is a Vega-Lite specification in its own JSON element, one per chart element
+    specs = [json.loads(text) for text in re.findall(
+        r'<script type="application/json" id="spec-\d+">(.*?)</script>', report, flags=re.S)]
+    assert len(specs) >= 4
+    assert len(specs) == report.count('class="chart"')
+    assert all("vega-lite" in spec["$schema"] for spec in specs)
     assert NEW in report
     with (demo / "schedule.csv").open() as handle:
         lines = handle.read().splitlines()

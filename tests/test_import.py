@@ -1,4 +1,5 @@
-"""Import through the real `mapper` entry point: counts, idempotence, the view, bad input."""
+"""Import through the `mapper` command line (in-process, and once as the installed command): counts,
+idempotence, the view, bad input."""
 
 from __future__ import annotations
 
@@ -24,7 +25,7 @@ def stored(db: Path) -> list[tuple]:
 
 def test_import_then_reimport_is_idempotent(tmp_path, small_campaign):
     db = tmp_path / "store.duckdb"
-    first = run_mapper("import", small_campaign, db=db)
+    first = run_mapper("import", small_campaign, db=db, real_process=True)  # the installed command
     assert first.returncode == 0, first.stderr
     assert "imported 4 file(s) as 4 test(s)" in first.stdout
     again = run_mapper("import", small_campaign, db=db)
@@ -232,4 +233,4 @@ def test_store_path_from_environment(tmp_path, small_campaign):
 
 def test_wrong_usage_exits_2(tmp_path):
     assert run_mapper("params", "--direction", "sideways", db=tmp_path / "x.duckdb").returncode == 2
-    assert run_mapper("no-such-command").returncode == 2
+    assert run_mapper("no-such-command", real_process=True).returncode == 2

@@ -80,11 +80,11 @@ def test_every_move_found_in_order_with_right_parameters(export):
     for i, window in enumerate(windows):
         q1, q2 = FLOWS[i], FLOWS[i + 1]
         h1, h2 = (q1 / OUTLET) ** 2, (q2 / OUTLET) ** 2
-        assert window["direction"] == ("up" if q2 > q1 else "down")
-        assert window["input_step"] == pytest.approx(q2 - q1, abs=1e-9)
-        assert window["level_estimate"] == pytest.approx((h1 + h2) / 2, abs=0.02)
-        assert "resampled_to_uniform_grid" in window["flags"]
-        fit = identify(window["t"], window["u"], window["y"])
+        assert window.direction == ("up" if q2 > q1 else "down")
+        assert window.input_step == pytest.approx(q2 - q1, abs=1e-9)
+        assert window.level_estimate == pytest.approx((h1 + h2) / 2, abs=0.02)
+        assert "resampled_to_uniform_grid" in window.flags
+        fit = identify(window.t, window.u, window.y)
         secant_gain = (h2 - h1) / (q2 - q1)
         h_mid = ((q1 + q2) / 2 / OUTLET) ** 2
         time_constant = 2 * AREA * np.sqrt(h_mid) / OUTLET
@@ -114,8 +114,8 @@ def test_move_before_settled_is_flagged():
         y += np.where(t >= start, 1 - np.exp(-np.clip(t - start, 0, None) / 60.0), 0.0)
     windows = split_signals(Signals(t=t, u=u, y=y + np.random.default_rng(2).normal(0, 1e-3, len(t))))
     assert len(windows) == 2
-    assert "next_move_before_settled" in windows[0]["flags"]
-    assert "next_move_before_settled" not in windows[1]["flags"]
+    assert "next_move_before_settled" in windows[0].flags
+    assert "next_move_before_settled" not in windows[1].flags
 
 
 def test_log_gives_the_same_map_as_separate_files(tmp_path, export):

@@ -137,17 +137,20 @@ def test_shapes_chosen_by_aicc():
 
 
 def test_extra_scatter_reduces_to_ordinary_least_squares():
-    # Intervals far narrower than the scatter: Paule-Mandel s^2 -> residual variance RSS/(n-p), i.e. the
-    # ordinary sample standard deviation for a constant, and the band is the t interval of the mean
-    # (textbook one-sample t interval).
+    # Intervals far narrower than the scatter and no repeats: the extra scatter comes from the
+    # reference model (the quadratic, richest polynomial leaving residual degrees of freedom), so
+    # s^2 -> its residual variance RSS/(n-3) (numpy polyfit), never from the misfit of the shape judged;
+    # the constant's band is then the t interval of the mean with that scatter (textbook t interval).
     rng = np.random.default_rng(5)
     y = 2.0 + 0.1 * rng.standard_normal(12)
     x = np.linspace(0, 1, 12)
     trend = fit_trend(x, y, np.full(12, 1e-6), "gain")
     assert trend.shape == "constant"
-    assert trend.extra_scatter == pytest.approx(np.std(y, ddof=1), rel=1e-3)
+    residual = y - np.polyval(np.polyfit(x, y, 2), x)
+    scatter = math.sqrt(np.sum(residual ** 2) / (12 - 3))
+    assert trend.extra_scatter == pytest.approx(scatter, rel=1e-3)
     value, lo, hi = trend.evaluate(0.5)
-    half = stats.t.ppf(0.975, 11) * np.std(y, ddof=1) / math.sqrt(12)
+    half = stats.t.ppf(0.975, 9) * scatter / math.sqrt(12)
     assert value == pytest.approx(np.mean(y), rel=1e-9)
     weight, coefficients, covariance, quantile = trend.alternatives[0]
     assert len(coefficients) == 1

@@ -188,6 +188,20 @@ def test_png_dir_writes_every_chart(inputs, tmp_path):
         p.name for p in info.png_files}
 
 
+def test_png_export_includes_the_closed_loop_chart(inputs, tmp_path):
+    from mapper.analysis.responses import response_rows
+
+    verdict = dict(inputs["verdict"])
+    verdict["points"] = [dict(p, gain=1.5, time_constant=12.0, dead_time=3.0, kc_local=1.3, ti_local=12.0,
+                              iae_ratio=1.1) for p in verdict["points"]]
+    verdict["responses"] = response_rows(verdict)
+    info = report.write_report(tmp_path / "r.html", png_dir=tmp_path / "png", **dict(inputs, verdict=verdict))
+    assert info.n_charts == 9
+    chart = tmp_path / "png" / "closed_loop.png"
+    assert chart.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification)
+    assert "Simulated closed-loop responses" in (tmp_path / "r.html").read_text(encoding="utf-8")
+
+
 # ------------------------------------------------------------- streaming
 def test_streamed_tests_are_held_one_at_a_time(inputs, tmp_path):
     live = []

@@ -13,12 +13,13 @@ import numpy as np
 import pandas as pd
 import pytest
 from scipy import stats
+from tank_campaigns import tank_campaign, true_gain
 
+from mapper.analysis.compare import compare_campaigns, compare_directions
 from mapper.analysis.influence import map_influence, verdict_influence, with_influence
 from mapper.analysis.opmap import build_map
-from mapper.analysis.shapes import Shape, fit_shape, pure_error_scatter
+from mapper.analysis.shapes import Shape, fit_shape, reference_fit
 from mapper.analysis.trends import cluster_levels, fit_trend
-from tank_campaigns import tank_campaign, true_gain
 
 Z = 1.959963984540054
 
@@ -102,7 +103,7 @@ def test_lack_of_fit_matches_draper_smith_f_test():
     labels = cluster_levels(x)
     sigma = np.full(y.size, 1e-6)
     z = (x - 1.5) / 1.5
-    fit = fit_shape(Shape("linear", "level", 1), z, y, sigma, labels, pure_error_scatter(y, sigma, labels))
+    fit = fit_shape(Shape("linear", "level", 1), z, y, sigma, labels, reference_fit(y, sigma, labels, z))
     slope, intercept = np.polyfit(x, y, 1)
     ss_res = float(np.sum((y - (intercept + slope * x)) ** 2))
     means = np.array([y[labels == k].mean() for k in range(4)])
@@ -183,3 +184,47 @@ def test_clean_campaign_depends_on_no_single_test():
     assert not opmap.depends_on and "No single test decides the map" in opmap.influence_sentence
     assert all(row["depends_on"] == [] for row in opmap.summary())
     assert math.isfinite(opmap.value("gain", 25.0)[0])
+
+
+# --- comparisons ---------------------------------------------------------------------------------
+
+def test_slightly_changed_plant_shows_no_significant_change_between_campaigns():
+    # Outflow coefficient 1 % larger: K = 2 sqrt(h)/c and tau = 2 A sqrt(h)/c fall by 1 % (textbook
+    # linearisation), inside what these step tests resolve (noise 5 % of the response: gain intervals
+    # about +-2 %). Different level sets, so one campaign's tests meet the other's trend.
+    old = tank_campaign([1.0, 2.0, 3.0, 4.0], seed=11, campaign="old", noise=0.05)
+    new = tank_campaign([1.0, 2.5, 4.0], seed=12, campaign="new", c=1.01, noise=0.05)
+    for first, second in ((old, new), (new, old)):
+        rows = compare_campaigns(first, second)
+        assert rows and not any(r["moved"] for r in rows), [r["sentence"] for r in rows if r["moved"]]
+        assert all("did not move significantly" in r["sentence"] for r in rows)
+        sources = {c["source_a"] for r in rows for c in r["compared"]} | {c["source_b"] for r in rows
+                                                                          for c in r["compared"]}
+        assert sources == {"tests", "trend"}
+
+
+def test_a_real_change_between_campaigns_is_still_found():
+    # Same tank with a 25 % larger area: tau grows 25 %, K stays (textbook linearisation).
+    old = tank_campaign([1.0, 2.0, 3.0, 4.0], seed=13, campaign="old", directions=("up",))
+    new = tank_campaign([1.0, 2.0, 3.0, 4.0], seed=14, campaign="new", directions=("up",), area=12.5)
+    rows = {r["parameter"]: r for r in compare_campaigns(old, new)}
+    assert rows["time_constant"]["moved"] and rows["time_constant"]["change"] == pytest.approx(0.25, abs=0.05)
+    assert not rows["gain"]["moved"]
+
+
+@pytest.mark.slow
+def test_up_down_on_a_symmetric_plant_with_wander_calls_few_differences():
+    # Symmetric plant (the tank), slow AR(1) inflow wander with a correlation time of 300 samples of
+    # about 3 % of the response, ten levels with two up and two down steps each: a difference may be
+    # called at no more than 1 level in 10 (issue 14 check).
+    from tank_campaigns import identified_row, simulate_step
+    rows = []
+    for level in np.linspace(1.0, 4.0, 10):
+        for direction in ("up", "up", "down", "down"):
+            t, q, h = simulate_step(level, direction, wander=(0.0012, 300), seed=31 + len(rows),
+                                    duration=40 + 8 * 20 * math.sqrt(level))
+            rows.append(identified_row(len(rows) + 1, level, direction, t, q, h))
+    found = compare_directions(pd.DataFrame(rows))
+    levels = {round(r["level"], 3) for r in found}
+    called = {round(r["level"], 3) for r in found if r["differs"]}
+    assert len(levels) == 10 and len(called) <= 1

@@ -1,8 +1,11 @@
 """Comparisons of step tests: repeats at one level, up against down steps, campaign against campaign.
 
-Every function takes rows of the store view ``test_params`` (rejected tests are left out) and returns
-a list of dicts, one per compared quantity, each with a ``sentence`` a person reads and the numbers
-behind it. Differences count only when they exceed the 95 % uncertainty of what is compared.
+Every function takes rows of the store view ``test_params`` (rejected and excluded tests are left out)
+and returns a list of dicts, one per compared quantity, each with a ``sentence`` a person reads and the
+numbers behind it. Differences count only when they exceed the 95 % uncertainty of what is compared,
+with the test intervals widened by the scatter repeats show beyond them, and with the threshold raised
+for the number of comparisons made at once (Bonferroni), so that a plant that merely wanders does not
+show "significant" differences.
 """
 
 from __future__ import annotations
@@ -13,7 +16,8 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from mapper.analysis.opmap import UNITS, build_map, format_level, parameter_values, usable_tests
+from mapper.analysis.opmap import UNITS, OperatingMap, build_map, format_level, parameter_values, usable_tests
+from mapper.analysis.shapes import pure_error_scatter
 from mapper.analysis.trends import LABELS, cluster_levels
 from mapper.constants import Z95
 
@@ -30,6 +34,33 @@ CAUSES = {
 
 def _fmt(value: float) -> str:
     return "n/a" if value is None or not np.isfinite(value) else f"{value:.4g}"
+
+
+def bonferroni_point(count: int) -> float:
+    """Two-sided normal point for ``count`` comparisons at a family-wise 5 % (Bonferroni, 1936)."""
+    return float(stats.norm.isf(0.025 / max(int(count), 1)))
+
+
+def _relative_scatter(frame: pd.DataFrame, name: str) -> float:
+    """Relative extra scatter of repeats (same level, same direction) beyond their intervals.
+
+    Paule-Mandel on the pure error of every (level, direction) group of the campaign, in the
+    logarithm (a relative scatter, so levels with large values do not dominate); 0 without repeats or
+    when the repeats agree with their intervals.
+    """
+    values, sigma = parameter_values(frame, name)
+    keep = np.isfinite(values) & np.isfinite(sigma) & (sigma > 0) & (values != 0)
+    if keep.sum() < 3:
+        return 0.0
+    part = frame[keep]
+    groups = part.groupby(["_group", "direction"], sort=False).ngroup().to_numpy()
+    magnitude = np.abs(values[keep])
+    s2, _ = pure_error_scatter(np.log(magnitude), sigma[keep] / magnitude, groups)
+    return math.sqrt(s2)
+
+
+def _widened(values: np.ndarray, sigma: np.ndarray, relative: float) -> np.ndarray:
+    return np.sqrt(sigma ** 2 + (relative * values) ** 2)
 
 
 def _weighted(values: np.ndarray, sigma: np.ndarray):
@@ -127,13 +158,20 @@ def compare_directions(params: pd.DataFrame, *, against: str = "level", level_to
 
     Notes
     -----
-    Each direction is summarised by its weighted mean; its standard error is inflated by the Birge
-    ratio when its repeats scatter beyond their intervals. The directions differ when
-    ``|up - down| / sqrt(se_up^2 + se_down^2) > 1.96`` (two-sided 5 %).
+    Each test's standard deviation (from its 95 % interval) is widened by the relative extra scatter
+    of repeats across the whole campaign (Paule & Mandel, 1982, on the pure error of every level and
+    direction), so slow wander that the intervals miss widens every comparison, even at levels
+    without repeats. Each direction is summarised by its weighted mean (standard error inflated by
+    the Birge ratio, Birge 1932, when its own repeats still scatter beyond that). The directions
+    differ when ``|up - down| / sqrt(se_up^2 + se_down^2)`` exceeds the two-sided Bonferroni point
+    for the parameters compared at a level (5 % for the level as a whole), so that a symmetric plant
+    shows a difference at no more than about one level in twenty.
     """
     frame = _groups(params, against, level_tolerance)
+    scatter = {name: _relative_scatter(frame, name) for name in COMPARED if name in frame.columns}
+    critical = bonferroni_point(len(scatter))
     rows = []
-    for _group, part in frame.groupby("_group", sort=True):
+    for _, part in frame.groupby("_group", sort=True):
         up = part[part["direction"] == "up"]
         down = part[part["direction"] == "down"]
         if up.empty or down.empty:
@@ -146,11 +184,11 @@ def compare_directions(params: pd.DataFrame, *, against: str = "level", level_to
             d_val, d_sig, _ = _clean(*parameter_values(down, name))
             if u_val.size == 0 or d_val.size == 0:
                 continue
-            u_mean, u_se, _, _ = _weighted(u_val, u_sig)
-            d_mean, d_se, _, _ = _weighted(d_val, d_sig)
+            u_mean, u_se, _, _ = _weighted(u_val, _widened(u_val, u_sig, scatter[name]))
+            d_mean, d_se, _, _ = _weighted(d_val, _widened(d_val, d_sig, scatter[name]))
             difference = u_mean - d_mean
             z = difference / math.hypot(u_se, d_se)
-            differs = abs(z) > Z95
+            differs = abs(z) > critical
             unit = UNITS[name]
             if differs:
                 sentence = (f"At {against} {format_level(level)} the {LABELS[name]} differs between up "
@@ -174,6 +212,25 @@ def _campaign_name(params: pd.DataFrame, default: str) -> str:
     return default
 
 
+def _side(opmap: OperatingMap, name: str, level: float, tolerance: float, *, any_trend: bool = False):
+    """Value and standard error of one campaign at ``level``: its own tests there when it tested that
+    level (pooled, outliers left out), else its trend; with the source. None when the level was not
+    tested and the trend passes through every level mean (its course between levels is unverified),
+    unless ``any_trend``."""
+    trend = opmap.trend(name)
+    if trend is None:
+        return None
+    for check in trend.level_checks:
+        if abs(check["level"] - level) <= tolerance:
+            se = (check["pooled_hi"] - check["pooled_lo"]) / (2 * Z95)
+            return check["pooled"], se, "tests"
+    saturated = trend.shape_spec is not None and trend.shape_spec.n_coefficients >= trend.n_levels
+    if saturated and not any_trend:
+        return None
+    value, lo, hi = opmap.value(name, level)
+    return value, (hi - lo) / (2 * Z95), "trend"
+
+
 def compare_campaigns(params_a: pd.DataFrame, params_b: pd.DataFrame, *, against: str = "level",
                       names: tuple[str, str] | None = None) -> list[dict]:
     """Which parameters moved between two campaigns, where, and whether significantly.
@@ -191,14 +248,23 @@ def compare_campaigns(params_a: pd.DataFrame, params_b: pd.DataFrame, *, against
     -------
     list of dict
         Per parameter: ``parameter, campaign_a, campaign_b, moved, levels`` (where it moved),
-        ``level`` (where the change is largest), ``value_a, value_b, change`` (relative), ``z``,
-        ``sentence``. With no shared range, one row with ``parameter=None`` says so.
+        ``level`` (where the change is largest in standard errors), ``value_a, value_b`` and
+        ``change_at_level`` (relative) there, ``z``, ``change`` (relative, inverse-variance weighted over
+        the compared levels), ``compared`` (per level: ``level, value_a, value_b, source_a, source_b,
+        z``) and ``sentence``.
+        With no shared range, one row with ``parameter=None`` says so.
 
     Notes
     -----
-    Both campaigns are mapped (:func:`mapper.analysis.opmap.build_map`) and their trends compared at the tested
-    levels inside the shared range; a change is significant where the difference exceeds 1.96 times
-    the combined standard error of the two trends.
+    The campaigns are compared at every tested level inside the shared range. At a level a campaign
+    tested, its own tests speak (their pooled value and interval, outliers against the trend left
+    out), so a trend shape that misses its tests cannot create a change; at a level only the other
+    campaign tested, the trend of the map (:func:`mapper.analysis.opmap.build_map`) with its band
+    stands in, unless that trend passes through every level mean (piecewise, or as many coefficients
+    as levels: its course between levels is then unverified and the level is not compared, as long as
+    some level is). A parameter moved where the difference exceeds, in combined standard errors, the
+    two-sided Bonferroni point for all the comparisons made (every parameter at every level), so the
+    comparison as a whole calls a change on an unchanged plant in at most about 5 % of cases.
     """
     name_a, name_b = names or (_campaign_name(params_a, "A"), _campaign_name(params_b, "B"))
     map_a, map_b = build_map(params_a, against=against), build_map(params_b, against=against)
@@ -206,35 +272,65 @@ def compare_campaigns(params_a: pd.DataFrame, params_b: pd.DataFrame, *, against
     if low > high:
         return [{"parameter": None, "campaign_a": name_a, "campaign_b": name_b, "moved": None, "levels": [],
                  "sentence": (f"Campaigns {name_a} ({format_level(map_a.level_min)} to "
-                              f"{format_level(map_a.level_max)}) and {name_b} "
-                              f"({format_level(map_b.level_min)} to {format_level(map_b.level_max)}) "
-                              f"share no tested range; nothing to compare.")}]
-    levels = np.array(sorted({v for v in map_a.levels + map_b.levels if low <= v <= high}) or [low])
-    rows = []
+                              f"{format_level(map_a.level_max)}) and {name_b} ({format_level(map_b.level_min)} "
+                              f"to {format_level(map_b.level_max)}) share no tested range; nothing to compare.")}]
+    tested = np.array(map_a.levels + map_b.levels)
+    span = max(map_a.level_max, map_b.level_max) - min(map_a.level_min, map_b.level_min)
+    tolerance = max(0.02 * span, 0.005 * float(np.max(np.abs(tested))))
+    labels = cluster_levels(tested, tolerance)
+    levels = np.array(sorted(float(np.mean(tested[labels == k])) for k in range(labels.max() + 1)))
+    levels = levels[(levels >= low - tolerance) & (levels <= high + tolerance)].clip(low, high)
+    if levels.size == 0:
+        levels = np.array([low])
+    chosen = {}
     for name in COMPARED + ("gain_over_time_constant",):
         if name not in map_a.trends or name not in map_b.trends:
             continue
-        va, la, ha = map_a.value(name, levels)
-        vb, lb, hb = map_b.value(name, levels)
-        se = np.hypot((ha - la) / (2 * Z95), (hb - lb) / (2 * Z95))
+        pairs = [(float(level), _side(map_a, name, float(level), tolerance),
+                  _side(map_b, name, float(level), tolerance)) for level in levels]
+        pairs = [p for p in pairs if p[1] is not None and p[2] is not None]
+        if not pairs:  # every level needs a trend whose course between levels is unverified: use it anyway
+            pairs = [(float(level), _side(map_a, name, float(level), tolerance, any_trend=True),
+                      _side(map_b, name, float(level), tolerance, any_trend=True)) for level in levels]
+        chosen[name] = pairs
+    # One family for the whole comparison: every parameter at every level compared.
+    critical = bonferroni_point(sum(len(pairs) for pairs in chosen.values()))
+    rows = []
+    for name, pairs in chosen.items():
+        used = np.array([p[0] for p in pairs])
+        compared = []
+        for level, (value_a, se_a, source_a), (value_b, se_b, source_b) in pairs:
+            combined = math.hypot(se_a, se_b)
+            score = (value_b - value_a) / combined if combined > 0 and np.isfinite(combined) else 0.0
+            compared.append({"level": float(level), "value_a": float(value_a), "value_b": float(value_b),
+                             "source_a": source_a, "source_b": source_b, "z": float(score),
+                             "se": float(combined)})
+        z = np.array([c["z"] for c in compared])
+        va = np.array([c["value_a"] for c in compared])
+        vb = np.array([c["value_b"] for c in compared])
+        se = np.array([c.pop("se") for c in compared])
         with np.errstate(divide="ignore", invalid="ignore"):
-            z = np.where(se > 0, (vb - va) / se, 0.0)
             change = np.where(va != 0, (vb - va) / np.abs(va), np.nan)
-        moved_at = levels[np.abs(z) > Z95]
+            weight = np.where(np.isfinite(change) & (se > 0), (np.abs(va) / se) ** 2, 0.0)
+        # Overall relative change: inverse-variance weighted over the compared levels.
+        overall = float(np.sum(weight * np.nan_to_num(change)) / np.sum(weight)) if weight.sum() > 0 else math.nan
+        moved_at = used[np.abs(z) > critical]
         k = int(np.argmax(np.abs(z)))
         unit = UNITS[name]
+        label = LABELS[name].capitalize()
         if moved_at.size:
             where = ", ".join(format_level(v) for v in moved_at)
-            sentence = (f"{LABELS[name].capitalize()} moved between {name_a} and {name_b}: at {against} "
-                        f"{format_level(levels[k])} from {_fmt(va[k])}{unit} to {_fmt(vb[k])}{unit} "
-                        f"({change[k]:+.0%}); significant at {against} {where}.")
+            sentence = (f"{label} moved between {name_a} and {name_b}: at {against} "
+                        f"{format_level(used[k])} from {_fmt(va[k])}{unit} to {_fmt(vb[k])}{unit} "
+                        f"({change[k]:+.0%}; {overall:+.0%} over the {used.size} compared levels); "
+                        f"significant at {against} {where}.")
         else:
-            sentence = (f"{LABELS[name].capitalize()} did not move significantly between {name_a} and "
-                        f"{name_b} over the shared range {format_level(low)} to {format_level(high)} "
-                        f"(largest difference "
-                        f"{change[k]:+.0%} at {against} {format_level(levels[k])}, inside the uncertainty).")
+            sentence = (f"{label} did not move significantly between {name_a} and {name_b} over the shared "
+                        f"range {format_level(low)} to {format_level(high)} (largest difference "
+                        f"{change[k]:+.0%} at {against} {format_level(used[k])}, inside the uncertainty).")
         rows.append({"parameter": name, "campaign_a": name_a, "campaign_b": name_b,
                      "moved": bool(moved_at.size), "levels": [float(v) for v in moved_at],
-                     "level": float(levels[k]), "value_a": float(va[k]), "value_b": float(vb[k]),
-                     "change": float(change[k]), "z": float(z[k]), "sentence": sentence})
+                     "level": float(used[k]), "value_a": float(va[k]), "value_b": float(vb[k]),
+                     "change": overall, "change_at_level": float(change[k]), "z": float(z[k]),
+                     "compared": compared, "sentence": sentence})
     return rows

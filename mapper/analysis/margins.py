@@ -186,7 +186,13 @@ def frequency_margins(response: Callable, *, w, phase: Callable | None = None) -
     # Phase crossovers: every crossing of -180 - k 360 degrees.
     branch = np.floor((grid_phase + np.pi) / (2 * np.pi))
     worst_gain, phase_crossover = 0.0, math.nan
-    for i in np.flatnonzero(np.diff(branch) != 0):
+    crossings = np.flatnonzero(np.diff(branch) != 0)
+    if crossings.size:
+        # Refine only crossings whose grid magnitude could hold the largest |L| (a delay loop crosses
+        # -180 - k 360 degrees endlessly at ever smaller gains).
+        grid_gain = np.maximum(magnitude[crossings], magnitude[crossings + 1])
+        crossings = crossings[grid_gain >= 0.5 * grid_gain.max()]
+    for i in crossings:
         level = -np.pi + 2 * np.pi * max(branch[i], branch[i + 1])
         try:
             x = math.exp(brentq(lambda lx, level=level: phase_at(math.exp(lx)) - level,
@@ -260,10 +266,15 @@ def quick_peak_sensitivity(kc, ti, gain, time_constant, dead_time, w, *, model="
     return peak
 
 
-def search_grid(gain, time_constant, dead_time, ti_scale, *, model="fopdt", points_per_decade=150):
-    """A fixed frequency grid for repeated evaluation of one process with varied controllers."""
+def search_grid(gain, time_constant, dead_time, ti_scale, *, model="fopdt", points_per_decade=150,
+                span=(1e-3 / 4.0, 300.0)):
+    """A fixed frequency grid for repeated evaluation of one process with varied controllers.
+
+    It runs from ``span[0]`` over the slowest to ``span[1]`` over the fastest time scale among the dead
+    time, the integral time and the time constant.
+    """
     scales = [s for s in (dead_time, ti_scale, time_constant if model == "fopdt" else None) if s and s > 0]
-    w_min = 1e-3 / (4.0 * max(scales))
-    w_max = 300.0 / min(scales)
+    w_min = span[0] / max(scales)
+    w_max = span[1] / min(scales)
     n = int(points_per_decade * np.log10(w_max / w_min)) + 2
     return np.logspace(np.log10(w_min), np.log10(w_max), n)

@@ -25,7 +25,8 @@ from mapper.constants import Z95
 # (t quantile stdtrit, F tail fdtrc, chi-square tail chdtrc) at a hundredth of the call cost, which
 # matters because trends are refitted once per test for the outlier and influence searches.
 
-__all__ = ["Shape", "ShapeFit", "candidate_shapes", "fit_shape", "pure_error_scatter"]
+__all__ = ["Reference", "Shape", "ShapeFit", "candidate_shapes", "fit_shape", "pure_error_scatter",
+           "reference_fit"]
 
 PIECEWISE_MAX_LEVELS = 6  # piecewise linear through level means is offered when levels are few
 
@@ -173,6 +174,45 @@ def pure_error_scatter(eta, s, labels) -> tuple[float, int]:
 
 
 @dataclass(frozen=True)
+class Reference:
+    """The model shapes are judged against: level means (repeats) or, without repeats, the richest
+    polynomial that leaves a residual degree of freedom. ``s2`` is the extra scatter it leaves."""
+
+    s2: float
+    dof: int
+    n_coefficients: int
+    labels: np.ndarray
+    design: np.ndarray | None = None
+
+    def chi_square(self, eta, variance) -> float:
+        if self.design is None:
+            return _pure_chi_square(eta, variance, self.labels)
+        return _weighted_solve(self.design, eta, variance)[2]
+
+
+def reference_fit(eta, s, labels, z) -> Reference | None:
+    """The reference model in one space (see :class:`Reference`); None with fewer than three tests.
+
+    Notes
+    -----
+    With repeats the reference is the level means and ``s2`` the pure-error scatter (Draper & Smith,
+    1998, sec. 2.1). Without repeats there is no pure error; the richest polynomial (at most
+    quadratic) that leaves a residual degree of freedom stands in for it, so ``s2`` is still
+    estimated once, from a flexible model, and never from the misfit of the shape being judged.
+    """
+    n_levels = int(labels.max() + 1)
+    if labels.size > n_levels:
+        s2, dof = pure_error_scatter(eta, s, labels)
+        return Reference(s2, dof, n_levels, labels)
+    degree = min(2, n_levels - 1, labels.size - 2)
+    if degree < 0 or labels.size < 3:
+        return None
+    design = np.vander(np.asarray(z, dtype=float), degree + 1, increasing=True)
+    dof = labels.size - degree - 1
+    return Reference(_paule_mandel(design, eta, s, dof), dof, degree + 1, labels, design)
+
+
+@dataclass(frozen=True)
 class ShapeFit:
     """One shape fitted to the tests of one parameter (see :func:`fit_shape`)."""
 
@@ -191,7 +231,7 @@ class ShapeFit:
         return self.shape.predict(z, self.coefficients, self.covariance)
 
 
-def fit_shape(shape: Shape, z, value, sigma, labels, pure: tuple[float, int] | None) -> ShapeFit:
+def fit_shape(shape: Shape, z, value, sigma, labels, reference: Reference | None) -> ShapeFit:
     """Weighted fit of one shape with its lack-of-fit test, AICc and significance.
 
     Parameters
@@ -201,20 +241,20 @@ def fit_shape(shape: Shape, z, value, sigma, labels, pure: tuple[float, int] | N
         Scaled levels, parameter values and their standard deviations.
     labels : ndarray of int
         Level of each test (:func:`mapper.analysis.trends.cluster_levels`).
-    pure : (float, int) or None
-        Extra scatter and pure-error degrees of freedom in the shape's space
-        (:func:`pure_error_scatter`); ``None`` or zero degrees of freedom when there are no repeats.
+    reference : Reference or None
+        The model the shape is judged against, in the shape's space (:func:`reference_fit`); None
+        for fewer than three tests (no extra scatter, no lack-of-fit test).
 
     Notes
     -----
-    Each test is weighted by ``1 / (s_i^2 + s2)``. With repeats, ``s2`` comes from the pure error
-    alone, so a shape that misses its tests cannot hide its misfit in the scatter; the shape is then
-    judged by the lack-of-fit test of Draper & Smith (*Applied Regression Analysis*, 3rd ed., 1998,
-    sec. 2.1): the weighted residual sum splits into pure error (tests about their level means) and
-    lack of fit, ``F = (chi2_lof / (m - p)) / (chi2_pe / (n - m))`` on ``(m - p, n - m)`` degrees of
-    freedom for ``m`` levels and ``p`` coefficients (a chi-square on ``m - p`` when the intervals
-    alone explain the repeats, ``s2 = 0``). Without repeats there is no pure error: ``s2`` is
-    estimated per shape by Paule-Mandel on its residuals and no lack-of-fit test is possible.
+    Each test is weighted by ``1 / (s_i^2 + s2)``. ``s2`` comes from the reference model (with
+    repeats, the pure error alone), so a shape that misses its tests cannot hide its misfit in the
+    scatter; the shape is then judged by the lack-of-fit test of Draper & Smith (*Applied Regression
+    Analysis*, 3rd ed., 1998, sec. 2.1): the weighted residual sum splits into pure error (tests
+    about the reference) and lack of fit, ``F = (chi2_lof / (m - p)) / (chi2_pe / d)`` on
+    ``(m - p, d)`` degrees of freedom for a reference of ``m`` coefficients (``m`` levels with
+    repeats) and ``d`` residual degrees of freedom and a shape of ``p`` coefficients (a chi-square on
+    ``m - p`` when the intervals alone explain the reference's residuals, ``s2 = 0``).
     AICc (Hurvich & Tsai, 1989) is taken on the likelihood of the parameter itself, so log shapes
     carry the Jacobian ``-sum(log|y|)`` and compare with the others. Significance is the Wald test of
     :meth:`Shape.contrast` (F with the degrees of freedom behind ``s2`` when ``s2`` was estimated,
@@ -223,25 +263,24 @@ def fit_shape(shape: Shape, z, value, sigma, labels, pure: tuple[float, int] | N
     eta, s = shape.to_space(value, sigma)
     design = shape.design(z)
     n, p = eta.size, shape.n_coefficients
-    n_levels = int(labels.max() + 1)
     dof = n - p
-    if pure is not None and pure[1] > 0:
-        s2, pure_dof = pure
-    else:
-        s2, pure_dof = _paule_mandel(design, eta, s, dof), 0
+    # Fewer than three tests: no reference; the shape's own residuals are all there is.
+    s2 = reference.s2 if reference is not None else _paule_mandel(design, eta, s, dof)
+    pure_dof = reference.dof if reference is not None else 0
     variance = s ** 2 + s2
     beta, covariance, chi2, residual = _weighted_solve(design, eta, variance)
     scatter_dof = pure_dof if pure_dof > 0 else dof
     quantile = float(special.stdtrit(scatter_dof, 0.975)) if s2 > 0 and scatter_dof > 0 else Z95
 
     lack_of_fit_p = None
-    if pure_dof > 0 and n_levels - p > 0:
-        chi2_pure = _pure_chi_square(eta, variance, labels)
-        lof = max(chi2 - chi2_pure, 0.0) / (n_levels - p)
+    if reference is not None and pure_dof > 0 and reference.n_coefficients - p > 0:
+        lof_dof = reference.n_coefficients - p
+        chi2_pure = reference.chi_square(eta, variance)
+        lof = max(chi2 - chi2_pure, 0.0) / lof_dof
         if s2 > 0:
-            lack_of_fit_p = float(special.fdtrc(n_levels - p, pure_dof, lof / (chi2_pure / pure_dof)))
+            lack_of_fit_p = float(special.fdtrc(lof_dof, pure_dof, lof / (chi2_pure / pure_dof)))
         else:
-            lack_of_fit_p = float(special.chdtrc(n_levels - p, lof * (n_levels - p)))
+            lack_of_fit_p = float(special.chdtrc(lof_dof, lof * lof_dof))
 
     significance_p = None
     contrast = shape.contrast()

@@ -17,7 +17,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 from scipy import special
 
-from mapper.analysis.shapes import Shape, ShapeFit, candidate_shapes, fit_shape, pure_error_scatter
+from mapper.analysis.shapes import Shape, ShapeFit, candidate_shapes, fit_shape, reference_fit
 from mapper.constants import RELEVANT_CHANGE_RATIO, Z95
 from mapper.errors import DataError
 
@@ -207,11 +207,11 @@ def _core_fit(z, y, sigma, labels) -> _Core:
     n_levels = int(labels.max() + 1)
     means = np.array([float(np.mean(z[labels == k])) for k in range(n_levels)])
     shapes = candidate_shapes(y, means, y.size)
-    pure = {"level": pure_error_scatter(y, sigma, labels)}
+    reference = {"level": reference_fit(y, sigma, labels, z)}
     if any(s.space == "log" for s in shapes):
         log_value, log_sigma = Shape("log", "log", 0).to_space(y, sigma)
-        pure["log"] = pure_error_scatter(log_value, log_sigma, labels)
-    fits = [fit_shape(s, z, y, sigma, labels, pure[s.space]) for s in shapes]
+        reference["log"] = reference_fit(log_value, log_sigma, labels, z)
+    fits = [fit_shape(s, z, y, sigma, labels, reference[s.space]) for s in shapes]
     # Adequate: passes the lack-of-fit test and stays inside the tested levels' pooled intervals.
     adequate = [f for f in fits if (f.lack_of_fit_p is None or f.lack_of_fit_p >= LACK_OF_FIT_LEVEL)
                 and (f.lack_of_fit_p is None or _inside_pooled(f, z, y, sigma, labels))]
@@ -321,7 +321,7 @@ def _detectable_ratio(z, y, sigma, labels) -> float:
     one_sign = bool(np.all(y > 0) or np.all(y < 0))
     shape = Shape("log_linear", "log", 1) if one_sign else Shape("linear", "level", 1)
     eta, s = shape.to_space(y, sigma)
-    fit = fit_shape(shape, z, y, sigma, labels, pure_error_scatter(eta, s, labels))
+    fit = fit_shape(shape, z, y, sigma, labels, reference_fit(eta, s, labels, z))
     slope = abs(fit.coefficients[1]) + fit.quantile * math.sqrt(max(fit.covariance[1][1], 0.0))
     if one_sign:
         return math.exp(2 * slope)

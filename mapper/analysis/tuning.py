@@ -4,8 +4,9 @@ This module owns the controller side of the job: published PI rules for first-or
 (FOPDT) and integrating-plus-dead-time processes, conversion of a controller to the settings an
 engineer types (gain, integral time in seconds and minutes, proportional band), robustness margins
 from the exact frequency response of the loop (dead time as ``exp(-j w theta)``, no Padé
-approximation; computed in :mod:`mapper.analysis.margins` and re-exported here), and the slowdown measure
-used by the verdict.
+approximation; computed in :mod:`mapper.analysis.margins` and re-exported here), and the ratio of
+integrated errors ``ti/kc`` (the verdict judges speed by the integrated *absolute* error after a load
+step instead, simulated in :mod:`mapper.analysis.closedloop`).
 
 Conventions: time in seconds, process gain in output units per input unit (integrating gain in
 output units per second per input unit), controller gain ``kc`` in input units per output unit,
@@ -241,7 +242,10 @@ def tune(rule: str, gain, time_constant, dead_time, *, closed_loop_time=None, mo
 
 
 def slowdown(local: PITuning, given: PITuning) -> float:
-    """How many times slower ``given`` rejects a load disturbance than ``local``.
+    """Ratio of integrated errors after a load step, ``given`` against ``local``.
+
+    A fair speed measure only for well-damped loops (it rewards oscillation); the verdict uses the
+    integrated absolute error from a simulation instead (:mod:`mapper.analysis.controller_search`).
 
     Returns
     -------

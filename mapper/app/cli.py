@@ -193,6 +193,9 @@ def import_command(
                                                             help="instrument range of the output"),
     time_unit: TimeUnit = typer.Option(TimeUnit.s, "--time-unit", help="unit of a numeric time column"),
     period: float | None = typer.Option(None, "--period", metavar="SECONDS", help="grid period for irregular logs"),
+    drop_bad_rows: bool = typer.Option(False, "--drop-bad-rows",
+                                       help="drop rows with unreadable cells (counted and flagged) "
+                                            "instead of refusing the file"),
 ) -> None:
     """Bring a campaign folder or loose data files into the store (creating it if needed)."""
     from mapper.store.ingest import import_campaigns, prepare_sources
@@ -207,7 +210,8 @@ def import_command(
                                          output_unit=output_unit, input_range=input_range,
                                          output_range=output_range)
     with _session(write=True, create=True) as session:
-        summary = import_campaigns(session.store, campaigns, progress=_progress("importing"))
+        summary = import_campaigns(session.store, campaigns, progress=_progress("importing"),
+                                   drop_bad_rows=drop_bad_rows)
     _say(summary.lines())
     for line in summary.refusals():
         sys.stderr.write(f"mapper: {line}\n")
@@ -350,11 +354,15 @@ def verdict_command(
     if format is Format.csv:
         typer.echo(format_records([dict(r, campaign=data.name) for r in result["schedule"]], "csv"))
         return
-    lines = [f"verdict for campaign '{data.name}'", f"decision: {result['decision']}"]
-    lines += [f"  - {r}" for r in result["reasons"]]
-    lines += ["", "margins of the single controller at each tested level:",
-              format_records(result["points"], "table"), "", "schedule:",
-              format_records(result["schedule"], "table")]
+    lines = [f"verdict for campaign '{data.name}'"]
+    lines += [f"decision: {result['decision']}"] + [f"  - {r}" for r in result["reasons"]]
+    lines += ["", "single controller at each tested level (Ms; IAE and peak after a load step, ratios to local "
+              "SIMC; setpoint overshoot):", format_records(verdict.level_rows(), "table")]
+    if verdict.schedule_points and result["decision"] == "schedule":
+        lines += ["", "schedule as applied at each tested level:",
+                  format_records(verdict.level_rows(schedule=True), "table")]
+    lines += ["", "schedule:", format_records([{k: v for k, v in r.items() if k != "tested_levels"}
+                                               for r in result["schedule"]], "table")]
     if schedule_out is not None:
         lines.append(f"schedule written to {schedule_out}")
     _say(lines)

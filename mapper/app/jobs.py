@@ -171,8 +171,9 @@ def write_campaign_report(store_path, out: Path, *, campaign: str | None = None,
             tests = _counted(tests, len(data.params), progress, "writing the report")
         # tests stream from the store into the file one at a time
         info = write_report(out, campaign=summary, params=data.params, trend=opmap.trend_frame(),
-                            map_summary=opmap.summary(), verdict=verdict.to_dict(),
-                            comparisons=found, tests=tests, png_dir=png_dir)
+                            map_summary=opmap.summary(), verdict=verdict.report_dict(),
+                            comparisons=found, tests=tests,
+                            png_dir=png_dir)
     return ReportOutcome(Path(info.path), info.size_bytes, tuple(info.png_files), verdict)
 
 

@@ -97,6 +97,18 @@ _ALL = (
     Flag("quantised_output", "The output is coarsely quantised against its change.", SUSPECT),
     Flag("poor_fit", "The residuals show structure the model does not explain.", SUSPECT),
     Flag(
+        "load_change",
+        "The output's baseline changed during the test in a way the input does not explain "
+        "(a load change or other disturbance); the fitted model is likely biased.",
+        SUSPECT,
+    ),
+    Flag(
+        "slow_disturbance",
+        "The output wanders slowly by 10 % of the response or more over the record; the "
+        "intervals allow for it, but repeat the test when the plant is steadier.",
+        SUSPECT,
+    ),
+    Flag(
         "time_constant_at_bound",
         "The time constant ran to the edge of what the record can show.",
         SUSPECT,

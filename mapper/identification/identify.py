@@ -31,7 +31,8 @@ from mapper.identification.quality import (
     noise_sd,
     standard_deviation,
 )
-from mapper.identification.uncertainty import sandwich_covariance, t_quantile
+from mapper.identification.disturbance import disturbance_flags
+from mapper.identification.uncertainty import disturbance_covariance
 
 __all__ = ["ESTIMATORS", "FitResult", "identify", "find_step", "StepInfo"]
 
@@ -259,7 +260,8 @@ def identify(
     change by the end of the record and an integrating model fits as well (within
     10 % residual sum of squares): the output ramps and never settles. Intervals come
     from the Jacobian at the optimum, widened for AR(1) residuals
-    (:func:`mapper.identification.uncertainty.sandwich_covariance`); the time-constant interval is
+    (:func:`mapper.identification.uncertainty.disturbance_covariance`: white noise plus a
+    slow wander, fitted by restricted likelihood); the time-constant interval is
     taken on a log scale so it stays positive.
     """
     if method not in ESTIMATORS:
@@ -319,6 +321,7 @@ def _identify_step(t, u, y, step, method, flags, settings, input_range, output_r
     fit = None
     used = method
     cov = None
+    disturbance = None
     phi = None
     quantile = None
     if method == "least_squares" or _still_ramping(shape):
@@ -335,8 +338,8 @@ def _identify_step(t, u, y, step, method, flags, settings, input_range, output_r
             )
     if fit is not None:
         e = fit.estimate
-        cov, phi, dof = sandwich_covariance(fit.jacobian, fit.residuals)
-        quantile = t_quantile(dof)
+        disturbance = disturbance_covariance(fit.jacobian, fit.residuals)
+        cov, phi, quantile = disturbance.covariance, disturbance.autocorrelation, disturbance.quantiles
     else:
         e = _POINT_METHODS[method](shape, step)
         if e.time_constant is None:
@@ -376,6 +379,14 @@ def _identify_step(t, u, y, step, method, flags, settings, input_range, output_r
     if e.at_bound and e.model == "fopdt":
         flags.append("time_constant_at_bound")
     flags = list(dict.fromkeys(flags))
+    if disturbance is not None and fit is not None:  # unexplained load changes and wander
+        first = step.index + int(e.dead_time / period) + 2 if np.isfinite(e.dead_time) else step.index
+        found, said = disturbance_flags(
+            fit.residuals, fit.jacobian, first=first, period=period, time_constant=e.time_constant,
+            response=response, noise=disturbance, fast_noise_sd=noise_sd(fit.residuals),
+        )  # fmt: skip
+        flags += [f for f in found if f not in flags]
+        notes += said
     notes = [flag_text(f) for f in (*import_flags, *flags)] + notes
     return FitResult(
         model=e.model, method=used,
@@ -425,17 +436,18 @@ def _intervals(e: est.Estimate, cov, z) -> dict[str, tuple[float | None, float |
     if cov is None:
         return out
     sd = np.sqrt(np.clip(np.diag(cov), 0.0, np.inf))
-    out["gain"] = (_finite(e.gain - z * sd[1]), _finite(e.gain + z * sd[1]))
+    z = np.broadcast_to(np.asarray(z, dtype=float), sd.shape)  # one t point per parameter
+    out["gain"] = (_finite(e.gain - z[1] * sd[1]), _finite(e.gain + z[1] * sd[1]))
     k = 2
     if e.model == "fopdt":
         assert e.time_constant is not None  # an FOPDT estimate always carries one
         rel = sd[2] / e.time_constant  # log-scale interval stays positive
         if np.isfinite(rel) and rel < 50:
             out["time_constant"] = (
-                _finite(e.time_constant * math.exp(-z * rel)),
-                _finite(e.time_constant * math.exp(z * rel)),
+                _finite(e.time_constant * math.exp(-z[2] * rel)),
+                _finite(e.time_constant * math.exp(z[2] * rel)),
             )
         k = 3
-    lo = max(e.dead_time - z * sd[k], 0.0)
-    out["dead_time"] = (_finite(lo), _finite(e.dead_time + z * sd[k]))
+    lo = max(e.dead_time - z[k] * sd[k], 0.0)
+    out["dead_time"] = (_finite(lo), _finite(e.dead_time + z[k] * sd[k]))
     return out

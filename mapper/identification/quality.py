@@ -39,7 +39,6 @@ from mapper.constants import (
 from mapper.signals import StepInfo, find_step, median, noise_sd  # call-through: use mapper.signals
 
 
-
 def standard_deviation(x: np.ndarray) -> float:
     """Population standard deviation (``numpy.std`` without its per-call overhead)."""
     if x.size == 0:

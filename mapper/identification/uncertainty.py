@@ -1,19 +1,26 @@
-"""Uncertainty of identified parameters: Jacobian covariance, autocorrelation, Cramér-Rao.
+"""Uncertainty of identified parameters: disturbance model, covariance, Cramér-Rao.
 
-This module owns the covariance of a least-squares fit (from the Jacobian at the
-optimum, widened for autocorrelated residuals) and the Cramér-Rao bound that an
+This module owns the covariance of a least-squares fit: from the Jacobian at the optimum
+and a noise model fitted to the residuals (white noise plus a slowly wandering, first-order
+correlated part, see :func:`disturbance_covariance`), and the Cramér-Rao bound that an
 efficient estimator reaches. It knows the models only through their sensitivities.
 """
 
 from __future__ import annotations
 
+import math
+from dataclasses import dataclass
+
 import numpy as np
+from scipy.linalg import lapack
 from scipy.signal import lfilter
 
 from mapper.constants import Z95
 from mapper.identification.models import fopdt_sensitivities
 
 __all__ = [
+    "DisturbanceCovariance",
+    "disturbance_covariance",
     "residual_autocorrelation",
     "sandwich_covariance",
     "t_quantile",
@@ -194,3 +201,179 @@ def cramer_rao_sd(
     cov = np.linalg.inv(W.T @ W)
     sd = np.sqrt(np.diag(cov))[-3:]
     return {"gain": float(sd[0]), "time_constant": float(sd[1]), "dead_time": float(sd[2])}
+
+
+# --- noise model with a slow, correlated part ---------------------------------------------
+
+CORRELATION_TIME_POINTS = 8  # grid of correlation times, log-spaced from 1 sample to 10 records
+CORRELATED_SHARES = (0.02, 0.1, 0.3, 0.6, 0.9, 0.98, 1.0)  # share of the noise variance
+MIN_CORRELATED_DOF = 6.0  # fewest effective samples credited to the correlated part
+
+
+@dataclass(frozen=True)
+class DisturbanceCovariance:
+    """Covariance of least-squares estimates under the fitted noise model.
+
+    Attributes
+    ----------
+    covariance : ndarray, shape (p, p)
+        Covariance of the parameters in the Jacobian's column order.
+    quantiles : ndarray, shape (p,)
+        Two-sided 95 % Student-t point for each parameter (effective degrees of freedom).
+    autocorrelation : float
+        Lag-one autocorrelation of the fitted noise model.
+    white_sd, correlated_sd : float
+        Standard deviations of the white and of the correlated part of the noise (most
+        likely model).
+    correlation_samples : float
+        Correlation time of the correlated part in samples (most likely model; 0 when the
+        noise is white).
+    """
+
+    covariance: np.ndarray
+    quantiles: np.ndarray
+    autocorrelation: float
+    white_sd: float
+    correlated_sd: float
+    correlation_samples: float
+
+
+def _q_times(z: np.ndarray, a: float) -> np.ndarray:
+    """``Q @ z`` (along axis 0) for ``Q = (1 - a^2) R^-1``, R the AR(1) correlation matrix.
+
+    Q is tridiagonal: ``1, 1 + a^2, ..., 1 + a^2, 1`` on the diagonal and ``-a`` beside it.
+    """
+    out = (1.0 + a * a) * z
+    out[0] = z[0]
+    out[-1] = z[-1]
+    out[1:] -= a * z[:-1]
+    out[:-1] -= a * z[1:]
+    return out
+
+
+def disturbance_covariance(jacobian: np.ndarray, residuals: np.ndarray) -> DisturbanceCovariance:
+    """Covariance of output-error estimates with a slow disturbance modelled, not assumed away.
+
+    Parameters
+    ----------
+    jacobian : ndarray, shape (n, p)
+        Derivatives of the model output with respect to the parameters at the optimum;
+        one column must be the constant offset (any position).
+    residuals : ndarray, shape (n,)
+        Output minus model at the optimum.
+
+    Returns
+    -------
+    DisturbanceCovariance
+
+    Notes
+    -----
+    The noise is modelled as white noise plus a first-order autoregressive part,
+    ``S = s^2 ((1 - w) I + w R)``, ``R[i, j] = a^|i-j|``, ``a = exp(-1/c)``: a slow wander
+    of correlation time ``c`` samples (a random walk is the limit of long ``c``) on top of
+    measurement noise; ``w = 1`` is plain AR(1) noise. Wander that the offset, gain and
+    time constant soak up leaves small residuals, so the noise parameters are judged by
+    restricted maximum likelihood (REML; Patterson & Thompson, 1971; Harville, 1977),
+    which accounts for what the fitted parameters absorb, with ``s^2`` profiled out.
+    ``R^-1`` is tridiagonal, so every likelihood costs one tridiagonal factorisation.
+
+    One record seldom settles the size of a slow wander, so no single noise model is
+    trusted: the covariance is averaged over a grid of ``(c, w)`` (c log-spaced from
+    1 sample to 10 records, ``w`` from 0 to 1, prior uniform over ``w`` and log-uniform
+    over ``c``) with weights proportional to the restricted likelihood (Bayesian model
+    averaging; Hoeting, Madigan, Raftery & Volinsky, 1999). For each noise model the
+    covariance of the least-squares estimate is the sandwich ``(J'J)^-1 J'SJ (J'J)^-1``
+    (White, 1980). The t point uses Satterthwaite's (1946) effective degrees of freedom,
+    crediting the correlated part with the effective number of independent samples
+    ``n (1 - a)/(1 + a)`` (Bayley & Hammersley, 1946), at least six, and the white part
+    with ``n - p``.
+    """
+    J = np.asarray(jacobian, dtype=float)
+    r = np.asarray(residuals, dtype=float)
+    n, p = J.shape
+    rows = np.ascontiguousarray(J.T)
+    scale = np.sqrt(np.einsum("ij,ij->i", rows, rows))
+    scale[scale == 0] = 1.0
+    rows /= scale[:, None]
+    gram = rows @ rows.T
+    bread = _pseudo_inverse(gram)
+    unscale = 1.0 / np.outer(scale, scale)
+    white_dof = float(max(n - p, 1))
+    sign, logdet_gram = np.linalg.slogdet(gram)
+    if n < p + 4 or sign <= 0:
+        s2 = float(r @ r) / white_dof
+        cov = s2 * bread * unscale
+        return DisturbanceCovariance(
+            0.5 * (cov + cov.T), np.full(p, t_quantile(white_dof)), 0.0, math.sqrt(s2), 0.0, 0.0
+        )
+    z = np.asfortranarray(np.column_stack([rows.T, r]))
+    correlations = np.geomspace(1.0, 10.0 * n, CORRELATION_TIME_POINTS)
+    grams, log_dets, grid = [], [], []  # grid: (prior weight, a, w, correlation index)
+    correlated = []
+    for j, c in enumerate(correlations):
+        a = math.exp(-1.0 / c)
+        qz = np.asfortranarray(_q_times(z, a))
+        correlated.append(bread @ (rows @ _ar1_times(rows, a, axis=1).T) @ bread)
+        shares = ((0.0,) if j == 0 else ()) + CORRELATED_SHARES
+        off_diagonal = np.empty(n - 1)
+        diagonal = np.empty(n)
+        for w in shares:
+            # H = (1 - w) I + w R = R B / (1 - a^2) with B = (1 - w) Q + (1 - a^2) w I
+            diagonal.fill((1.0 - w) * (1.0 + a * a) + (1.0 - a * a) * w)
+            diagonal[0] = diagonal[-1] = (1.0 - w) + (1.0 - a * a) * w
+            off_diagonal.fill(-(1.0 - w) * a)
+            factor_d, factor_e, info = lapack.dpttrf(diagonal, off_diagonal)
+            if info != 0:
+                continue
+            h_inv_z, info = lapack.dpttrs(factor_d, factor_e, qz)
+            if info != 0:
+                continue
+            grams.append(z.T @ h_inv_z)
+            log_dets.append(float(np.sum(np.log(factor_d))) - math.log1p(-a * a))
+            # prior uniform over w: the white model stands for every correlation time
+            grid.append((float(CORRELATION_TIME_POINTS) if w == 0.0 else 1.0, a, w, j))
+    if not grid:
+        return sandwich_covariance_result(J, r)
+    g = np.array(grams)
+    sign, log_det_a = np.linalg.slogdet(g[:, :p, :p])
+    solved = np.linalg.solve(g[:, :p, :p], g[:, :p, p:])[:, :, 0]
+    quadratic = g[:, p, p] - np.einsum("ki,ki->k", g[:, :p, p], solved)
+    usable = (sign > 0) & (quadratic > 0)
+    s2_all = np.where(usable, quadratic, 1.0) / white_dof
+    loglik_all = -0.5 * (np.array(log_dets) + log_det_a - logdet_gram + white_dof * np.log(s2_all))
+    if not usable.any():
+        return sandwich_covariance_result(J, r)
+    prior, a_k, w_k, j_k = (np.array(column)[usable] for column in zip(*grid))
+    j_k = j_k.astype(int)
+    s2_k, loglik_k = s2_all[usable], loglik_all[usable]
+    weight = prior * np.exp(loglik_k - loglik_k.max())
+    weight /= weight.sum()
+    correlated_stack = np.array(correlated)  # (correlation times, p, p)
+    white_part = (s2_k * (1.0 - w_k))[:, None] * np.diag(bread)[None, :]
+    correlated_part = (s2_k * w_k)[:, None] * np.einsum("jii->ji", correlated_stack)[j_k]
+    variance = white_part + correlated_part
+    correlated_dof = np.maximum(n * (1.0 - a_k) / (1.0 + a_k), MIN_CORRELATED_DOF)
+    per_dof = white_part**2 / white_dof + correlated_part**2 / correlated_dof[:, None]
+    mean_v2, mean_v2_dof = weight @ variance**2, weight @ per_dof
+    dof = np.divide(mean_v2, mean_v2_dof, out=np.full(p, white_dof), where=mean_v2_dof > 0)
+    per_correlation = np.bincount(j_k, weights=weight * s2_k * w_k, minlength=len(correlated))
+    cov = float(weight @ (s2_k * (1.0 - w_k))) * bread + np.einsum("j,jkl->kl", per_correlation, correlated_stack)
+    cov = cov * unscale
+    best = int(np.argmax(loglik_k))
+    s2, w = float(s2_k[best]), float(w_k[best])
+    return DisturbanceCovariance(
+        0.5 * (cov + cov.T),
+        np.array([t_quantile(d) for d in dof]),
+        float(weight @ (w_k * a_k)),
+        math.sqrt(s2 * (1.0 - w)),
+        math.sqrt(s2 * w),
+        float(correlations[j_k[best]]) if w > 0 else 0.0,
+    )
+
+
+def sandwich_covariance_result(jacobian: np.ndarray, residuals: np.ndarray) -> DisturbanceCovariance:
+    """:func:`sandwich_covariance` (AR(1) residuals) as a :class:`DisturbanceCovariance`."""
+    cov, phi, dof = sandwich_covariance(jacobian, residuals)
+    sd = math.sqrt(float(np.dot(residuals, residuals)) / max(len(residuals), 1))
+    p = cov.shape[0]
+    return DisturbanceCovariance(cov, np.full(p, t_quantile(dof)), phi, sd, 0.0, 0.0)

@@ -13,6 +13,7 @@ import difflib
 import math
 import tomllib
 from dataclasses import dataclass, field
+from datetime import datetime, timezone
 from pathlib import Path
 
 from mapper.errors import CampaignFileError
@@ -28,7 +29,8 @@ TIME_UNITS = {
 }
 
 _TOP_KEYS = {"name", "description", "columns", "units", "ranges", "tests", "period"}
-_COLUMN_KEYS = {"time", "input", "output"}
+_COLUMN_KEYS = {"time", "input", "output", "time_format"}
+_REQUIRED_COLUMN_KEYS = ("input", "output", "time")
 _UNIT_KEYS = {"time", "input", "output"}
 _RANGE_KEYS = {"input", "output"}
 _TEST_KEYS = {"file", "level", "note", "windows"}
@@ -77,6 +79,7 @@ class Campaign:
     period: float | None = None
     description: str = ""
     tests: tuple[TestEntry, ...] = field(default_factory=tuple)
+    time_format: str | None = None  # strftime pattern of text timestamps, e.g. "%d.%m.%Y %H:%M:%S"
 
     @property
     def seconds_per_time_unit(self) -> float:
@@ -214,11 +217,14 @@ def load_campaign(folder: str | Path) -> Campaign:
                                 hint="add [columns] with time, input and output column names")
     columns = _expect(data["columns"], (dict,), "[columns]", source)
     _check_keys(columns, _COLUMN_KEYS, "[columns]", source)
-    for key in sorted(_COLUMN_KEYS):
+    for key in _REQUIRED_COLUMN_KEYS:
         if key not in columns:
             raise CampaignFileError(f"{source}: [columns] is missing '{key}'",
                                     hint="name the time, input and output columns")
         _expect(columns[key], (str,), f"columns.{key}", source)
+    time_format = None
+    if "time_format" in columns:
+        time_format = _time_format(columns["time_format"], source)
 
     units = _expect(data.get("units", {}), (dict,), "[units]", source)
     _check_keys(units, _UNIT_KEYS, "[units]", source)
@@ -250,8 +256,25 @@ def load_campaign(folder: str | Path) -> Campaign:
         input_column=columns["input"], output_column=columns["output"], time_unit=time_unit,
         input_unit=units.get("input", ""), output_unit=units.get("output", ""),
         input_range=input_range, output_range=output_range, period=period,
-        description=str(data.get("description", "")), tests=tuple(tests),
+        description=str(data.get("description", "")), tests=tuple(tests), time_format=time_format,
     )
+
+
+def _time_format(value, source: Path) -> str:
+    """A strftime pattern for text timestamps, checked by formatting a known instant."""
+    pattern = _expect(value, (str,), "columns.time_format", source)
+    example = datetime(2026, 3, 4, 10, 15, 30, tzinfo=timezone.utc)
+    try:
+        written = example.strftime(pattern)
+        datetime.strptime(written, pattern)
+    except ValueError as exc:
+        raise CampaignFileError(f"{source}: columns.time_format '{pattern}' is not a usable time "
+                                f"pattern ({exc})",
+                                hint='write it with strftime codes, e.g. "%d.%m.%Y %H:%M:%S"') from None
+    if "%" not in pattern or written == pattern:
+        raise CampaignFileError(f"{source}: columns.time_format '{pattern}' holds no time codes",
+                                hint='write it with strftime codes, e.g. "%d.%m.%Y %H:%M:%S"')
+    return pattern
 
 
 def _test_entry(entry, number: int, folder: Path, source: Path) -> TestEntry:

@@ -22,110 +22,23 @@ import pandas as pd
 import pyarrow as pa
 
 from mapper import __version__
-from mapper.columns import (
-    FIT_LIST_COLUMNS,
-    FIT_VALUE_COLUMNS,
-    FIT_VALUE_NAMES,
-    TEST_PARAMS_NAMES,
-)
+from mapper.columns import FIT_LIST_COLUMNS, FIT_VALUE_COLUMNS
 from mapper.errors import NotAStoreError, NotFoundError, StoreError, StoreInUseError
+from mapper.store.schema import (
+    ADDED_COLUMNS,
+    ARROW_TYPES,
+    SCHEMA,
+    SQL_TYPES,
+    TEST_COLUMN_TYPES,
+    quoted,
+)
+from mapper.store.segment import TestWindow
 
 SCHEMA_VERSION = 1
 DEFAULT_STORE = "mapper.duckdb"
 STORE_ENV = "MAPPER_DB"
 LOCK_WAIT_ENV = "MAPPER_LOCK_WAIT"
 _DUCKDB_MAGIC = b"DUCK"
-
-# DuckDB type of each kind of registered column (mapper.columns)
-_SQL_TYPES = {"number": "DOUBLE", "integer": "INTEGER", "text": "VARCHAR", "text_list": "VARCHAR[]"}
-_ARROW_TYPES = {"number": pa.float64(), "integer": pa.int32(), "text": pa.string(),
-                "text_list": pa.list_(pa.string())}
-
-# Columns of the public view that are not plain fit values: how each is formed.
-_VIEW_EXPRESSIONS = {
-    "test_id": "t.test_id",
-    "campaign": "c.name",
-    "file": "t.file",
-    "level": "coalesce(t.level_given, (f.y_before + f.y_after) / 2, t.level_estimate)",
-    "direction": ("coalesce(CASE WHEN f.input_step > 0 THEN 'up' WHEN f.input_step < 0 THEN 'down' END, "
-                  "t.direction)"),
-    "input_step": "coalesce(f.input_step, t.input_step)",
-    "flags": "list_concat(coalesce(t.import_flags, []::VARCHAR[]), coalesce(f.flags, []::VARCHAR[]))",
-}
-
-
-def _quoted(name: str) -> str:
-    """A registered column name as an SQL identifier (some, like ``offset``, are keywords)."""
-    return f'"{name}"'
-
-
-def _fits_table_sql() -> str:
-    """CREATE TABLE for ``fits``, its value columns generated from the registry."""
-    registered = [f"{_quoted(c.name)} {_SQL_TYPES[c.kind]}" for c in (*FIT_VALUE_COLUMNS, *FIT_LIST_COLUMNS)]
-    return ("CREATE TABLE IF NOT EXISTS fits (test_id INTEGER PRIMARY KEY, " + ", ".join(registered)
-            + ", settings VARCHAR, tool_version VARCHAR, fitted_at TIMESTAMP DEFAULT current_timestamp)")
-
-
-def _view_sql() -> str:
-    """The public view ``test_params``, its columns in the registry's order."""
-    fit_names = set(FIT_VALUE_NAMES)
-    selected = []
-    for name in TEST_PARAMS_NAMES:
-        if name in _VIEW_EXPRESSIONS:
-            selected.append(f"{_VIEW_EXPRESSIONS[name]} AS {_quoted(name)}")
-        elif name in fit_names:
-            selected.append(f"f.{_quoted(name)}")
-        else:
-            raise RuntimeError(f"view column {name} has no source")  # a registry edit missed here
-    return ("CREATE OR REPLACE VIEW test_params AS SELECT " + ", ".join(selected)
-            + " FROM tests t JOIN campaigns c USING (campaign_id) LEFT JOIN fits f USING (test_id)")
-
-
-_SCHEMA = [
-    """CREATE TABLE IF NOT EXISTS mapper_meta (key VARCHAR PRIMARY KEY, value VARCHAR)""",
-    """CREATE SEQUENCE IF NOT EXISTS campaign_ids START 1""",
-    """CREATE SEQUENCE IF NOT EXISTS test_ids START 1""",
-    """CREATE TABLE IF NOT EXISTS campaigns (
-        campaign_id INTEGER PRIMARY KEY DEFAULT nextval('campaign_ids'),
-        name VARCHAR NOT NULL UNIQUE,
-        folder VARCHAR,
-        description VARCHAR,
-        time_unit VARCHAR,
-        input_unit VARCHAR,
-        output_unit VARCHAR,
-        input_range_low DOUBLE, input_range_high DOUBLE,
-        output_range_low DOUBLE, output_range_high DOUBLE,
-        created_at TIMESTAMP DEFAULT current_timestamp)""",
-    """CREATE TABLE IF NOT EXISTS tests (
-        test_id INTEGER PRIMARY KEY DEFAULT nextval('test_ids'),
-        campaign_id INTEGER NOT NULL REFERENCES campaigns (campaign_id),
-        file VARCHAR NOT NULL,
-        source_path VARCHAR,
-        source_hash VARCHAR NOT NULL,
-        window_index INTEGER NOT NULL,
-        window_start DOUBLE, window_end DOUBLE,
-        start_time VARCHAR,
-        time_zone VARCHAR,
-        period DOUBLE NOT NULL,
-        n_samples INTEGER NOT NULL,
-        level_given DOUBLE,
-        level_estimate DOUBLE,
-        direction VARCHAR,
-        input_step DOUBLE,
-        note VARCHAR,
-        import_flags VARCHAR[],
-        imported_at TIMESTAMP DEFAULT current_timestamp,
-        UNIQUE (source_hash, window_index))""",
-    """CREATE TABLE IF NOT EXISTS samples (
-        test_id INTEGER NOT NULL,
-        sample_index INTEGER NOT NULL,
-        t DOUBLE NOT NULL,
-        u DOUBLE NOT NULL,
-        y DOUBLE NOT NULL)""",
-    _fits_table_sql(),
-    _view_sql(),
-]
-
 
 def default_store_path() -> Path:
     """The store used when no ``--db`` is given: ``$MAPPER_DB`` or ``mapper.duckdb`` here."""
@@ -220,13 +133,13 @@ class Store:
             self._add_registered_columns()
 
     def _add_registered_columns(self) -> None:
-        """Give a store made by an earlier mapper the fit columns registered since."""
-        present = {r[0] for r in self.connection.execute(
-            "SELECT column_name FROM information_schema.columns WHERE table_name = 'fits'").fetchall()}
-        missing = [c for c in (*FIT_VALUE_COLUMNS, *FIT_LIST_COLUMNS) if c.name not in present]
-        for spec in missing:
-            column_sql = f"{_quoted(spec.name)} {_SQL_TYPES[spec.kind]}"  # registry name and type, no user text
-            self.connection.execute("ALTER TABLE fits ADD COLUMN " + column_sql)
+        """Give a store made by an earlier mapper the columns added since (schema.ADDED_COLUMNS)."""
+        present = set(self.connection.execute(
+            "SELECT table_name, column_name FROM information_schema.columns").fetchall())
+        for table, name, kind in ADDED_COLUMNS:
+            if (table, name) not in present:  # names and types from the schema module, no user text
+                statement = f"ALTER TABLE {table} ADD COLUMN {quoted(name)} {SQL_TYPES[kind]}"
+                self.connection.execute(statement)
 
     def _check_existing(self, wait: float) -> None:
         # Inspect read-only first so that a foreign DuckDB database is never written to.
@@ -257,7 +170,7 @@ class Store:
         con = duckdb.connect(str(partial))
         try:
             con.execute("BEGIN TRANSACTION")
-            for statement in _SCHEMA:
+            for statement in SCHEMA:
                 con.execute(statement)
             con.execute("INSERT OR IGNORE INTO mapper_meta VALUES ('schema_version', ?), "
                         "('created_by', ?)", [str(SCHEMA_VERSION), f"mapper {__version__}"])
@@ -319,11 +232,12 @@ class Store:
             [list(source_hashes)]).fetchall()
         return {r[0] for r in rows}
 
-    def add_tests(self, campaign, windows: Sequence) -> list[int]:
+    def add_tests(self, campaign, windows: Sequence[TestWindow]) -> list[int]:
         """Store test windows (of one or several files) in one transaction.
 
-        ``windows`` are :class:`mapper.store.ingest.TestWindow` objects. Returns the new ids.
-        Rows and samples go in as columnar tables, not row by row.
+        Each :class:`~mapper.store.segment.TestWindow` gives its ``tests`` row through its
+        ``to_row()``. Returns the new ids. Rows and samples go in as columnar tables, not
+        row by row.
         """
         if not windows:
             return []
@@ -331,28 +245,12 @@ class Store:
             campaign_id = self.ensure_campaign(con, campaign)
             ids = [int(r[0]) for r in con.execute(
                 "SELECT nextval('test_ids') FROM range(?)", [len(windows)]).fetchall()]
-
-            def column(name, kind):
-                return pa.array([getattr(w, name) for w in windows], kind)
+            rows = [w.to_row() for w in windows]
             tests = pa.table({
                 "test_id": pa.array(ids, pa.int32()),
                 "campaign_id": pa.array([campaign_id] * len(windows), pa.int32()),
-                "file": column("file", pa.string()),
-                "source_path": pa.array([str(w.source_path) for w in windows], pa.string()),
-                "source_hash": column("source_hash", pa.string()),
-                "window_index": column("window_index", pa.int32()),
-                "window_start": column("window_start", pa.float64()),
-                "window_end": column("window_end", pa.float64()),
-                "start_time": column("start_time", pa.string()),
-                "time_zone": column("time_zone", pa.string()),
-                "period": column("period", pa.float64()),
-                "n_samples": pa.array([len(w.t) for w in windows], pa.int32()),
-                "level_given": column("level_given", pa.float64()),
-                "level_estimate": column("level_estimate", pa.float64()),
-                "direction": column("direction", pa.string()),
-                "input_step": column("input_step", pa.float64()),
-                "note": column("note", pa.string()),
-                "import_flags": pa.array([list(w.flags) for w in windows], pa.list_(pa.string())),
+                **{name: pa.array([r[name] for r in rows], ARROW_TYPES[kind])
+                   for name, kind in TEST_COLUMN_TYPES.items()},
             })
             samples = pa.table({
                 "test_id": np.concatenate([np.full(len(w.t), i, dtype=np.int32) for i, w in zip(ids, windows)]),
@@ -361,7 +259,7 @@ class Store:
                 "u": np.concatenate([w.u for w in windows]),
                 "y": np.concatenate([w.y for w in windows]),
             })
-            names = ", ".join(tests.column_names)  # constant column names, no user text
+            names = ", ".join(map(quoted, tests.column_names))  # fixed column names, no user text
             con.register("incoming_tests", tests)
             con.register("incoming_samples", samples)
             try:
@@ -411,11 +309,11 @@ class Store:
                 values = [None if v is None or not np.isfinite(float(v)) else float(v) for v in values]
             elif spec.kind == "text_list":
                 values = [list(v or []) for v in values]
-            columns[spec.name] = pa.array(values, _ARROW_TYPES[spec.kind])
+            columns[spec.name] = pa.array(values, ARROW_TYPES[spec.kind])
         columns["settings"] = pa.array([json.dumps(r.get("settings") or {}, default=str) for r in rows])
         columns["tool_version"] = pa.array([__version__] * len(rows))
         table = pa.table(columns)
-        names = ", ".join(map(_quoted, table.column_names))  # registry names, no user text
+        names = ", ".join(map(quoted, table.column_names))  # registry names, no user text
         with self.transaction() as con:
             con.register("incoming_fits", table)
             try:
@@ -425,13 +323,49 @@ class Store:
                 con.unregister("incoming_fits")
 
     def fit_inputs(self, test_ids: Sequence[int]) -> dict[int, dict]:
-        """Instrument ranges per test, for many tests in one query."""
+        """Instrument ranges and where the window's own move starts, per test, in one query.
+
+        Keys: ``input_range_low``, ``input_range_high``, ``output_range_low``,
+        ``output_range_high``, ``move_start_index`` and ``move_start_time`` (s from the
+        window start; both None for explicit windows and stores imported before they
+        were kept).
+        """
+        column_sql = ("t.move_start_index, t.move_start_time" if self._has_column("tests", "move_start_index")
+                      else "NULL, NULL")  # a read-only store from an earlier mapper
         rows = self.connection.execute(
             "SELECT t.test_id, c.input_range_low, c.input_range_high, c.output_range_low, "
-            "c.output_range_high FROM tests t JOIN campaigns c USING (campaign_id) "
+            "c.output_range_high, " + column_sql + " FROM tests t JOIN campaigns c USING (campaign_id) "
             "WHERE t.test_id IN (SELECT unnest(?::INTEGER[]))", [list(map(int, test_ids))]).fetchall()
-        keys = ("input_range_low", "input_range_high", "output_range_low", "output_range_high")
+        keys = ("input_range_low", "input_range_high", "output_range_low", "output_range_high",
+                "move_start_index", "move_start_time")
         return {int(r[0]): dict(zip(keys, r[1:])) for r in rows}
+
+    def _has_column(self, table: str, column: str) -> bool:
+        row = self.connection.execute(
+            "SELECT count(*) FROM information_schema.columns WHERE table_name = ? AND column_name = ?",
+            [table, column]).fetchone()
+        return bool(row and row[0])
+
+    def preceding_record(self, test_id: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """The file's record before this test's window, from the earlier windows of its file.
+
+        Times are seconds relative to this window's first sample (so all negative); each
+        earlier window gives its samples up to the start of the window after it, so the
+        shared plateaus appear once. Empty arrays for a file's first window.
+        """
+        arrays = self.connection.execute(
+            "WITH mine AS (SELECT source_hash, window_index, window_start FROM tests WHERE test_id = ?), "
+            "earlier AS (SELECT o.test_id, o.window_index, o.window_start, o.period, "
+            "  lead(o.window_start) OVER (ORDER BY o.window_index) AS next_start "
+            "  FROM tests o, mine WHERE o.source_hash = mine.source_hash "
+            "  AND o.window_index <= mine.window_index) "
+            "SELECT s.t + e.window_start - m.window_start AS t, s.u, s.y "
+            "FROM samples s JOIN earlier e USING (test_id), mine m "
+            "WHERE e.window_index < m.window_index "
+            "AND s.t + e.window_start < e.next_start - 0.25 * e.period "
+            "ORDER BY e.window_index, s.sample_index", [int(test_id)]).fetchnumpy()
+        t, u, y = (np.asarray(arrays[k], float) for k in ("t", "u", "y"))
+        return t, u, y
 
     def samples_many(self, test_ids: Sequence[int]) -> dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]]:
         """Samples of several tests in one query (a batch, never the whole campaign)."""

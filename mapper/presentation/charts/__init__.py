@@ -6,7 +6,7 @@ chart). Builders never save anything; :mod:`mapper.presentation.report` turns th
 into HTML and PNG, and a notebook shows them inline by itself.
 
 Layout: one module per chart (:mod:`.operating_map`, :mod:`.overlay`, :mod:`.step_test`,
-:mod:`.verdict`) holding only the Vega-Lite description; the data shaping they share
+:mod:`.verdict`, :mod:`.closed_loop`) holding only the Vega-Lite description; the data shaping they share
 (rounding, decimation, rows) lives in :mod:`.data`, which does not import altair, and the
 palette and altair helpers in :mod:`.style`.
 
@@ -20,6 +20,7 @@ Conventions
 
 from __future__ import annotations
 
+from mapper.presentation.charts.closed_loop import closed_loop_chart
 from mapper.presentation.charts.data import (
     FRACTION_AT_TIME_CONSTANT,
     MAP_PARAMETERS,
@@ -46,6 +47,7 @@ __all__ = [
     "POINTS_PER_TEST",
     "VEGA_LITE_VERSION",
     "OverlaySeries",
+    "closed_loop_chart",
     "decimate",
     "margins_chart",
     "operating_map_chart",

@@ -120,6 +120,10 @@ def schedule_section(page: Page, verdict: Mapping[str, Any] | None, units: Mappi
     if verdict.get("points") or verdict.get("schedule_points"):
         page.chart("margins", charts.margins_chart(verdict, units=units),
                    "Maximum sensitivity across the tested levels")
+    if verdict.get("responses"):
+        page.chart("closed_loop", charts.closed_loop_chart(verdict, units=units),
+                   "Simulated closed-loop responses (load step and setpoint step) at the lowest, middle and "
+                   "highest tested levels: single controller against the schedule and the local tuning")
     page.add(cautions_box() + "</section>")
 
 
