@@ -86,8 +86,18 @@ def test_verdict_json_shape(demo):
     assert verdict["decision"] in ("single", "schedule")
     assert verdict["reasons"] and all(isinstance(r, str) for r in verdict["reasons"])
     assert set(verdict["variation"]["gain"]) >= {"min", "max", "ratio", "significant"}
-    assert {"level", "ms", "gain_margin", "phase_margin_deg", "slowdown"} <= set(verdict["points"][0])
+    assert {"level", "ms", "gain_margin", "phase_margin_deg", "slowdown", "iae_ratio", "peak_ratio",
+            "overshoot"} <= set(verdict["points"][0])
     assert {"level", "kc", "ti"} <= set(verdict["schedule"][0])
+    assert len(verdict["reason_codes"]) == len(verdict["reasons"])
+    assert verdict["decision"] != "schedule" or "no_single_controller" in verdict["reason_codes"]
+
+
+def test_verdict_prints_iae_ratio_peak_and_ms_per_level(demo):
+    result = run_mapper("verdict", "--campaign", NEW, db=demo / "demo.duckdb")
+    assert result.returncode == 0, result.stderr
+    header = next(line for line in result.stdout.splitlines() if "iae_ratio" in line)
+    assert "peak_ratio" in header and "ms" in header.split()
 
 
 def test_map_and_compare_commands(demo):

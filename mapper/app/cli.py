@@ -299,6 +299,8 @@ def map_command(
              f"({opmap.level_min:g} to {opmap.level_max:g}{level_unit})",
              format_records(views.with_unit_names(rows, units), "table", kind="map"), ""]
     lines += [f"- {row['reason']}" for row in rows]
+    if opmap.influence_sentence:
+        lines += ["", opmap.influence_sentence] + [f"  - {d.sentence}" for d in opmap.depends_on]
     _say(lines)
 
 
@@ -314,7 +316,7 @@ def at_command(
 ) -> None:
     """Gain, time constant and dead time at LEVEL, with the 95 % band."""
     with _session() as session:
-        data, opmap = session.operating_map(campaign, against=against.value)
+        data, opmap = session.operating_map(campaign, against=against.value, influence=False)
         answer = opmap.at(level, extrapolate=extrapolate)
     if answer.get("warning"):
         sys.stderr.write(f"mapper: warning: {answer['warning']}\n")
@@ -356,6 +358,8 @@ def verdict_command(
         return
     lines = [f"verdict for campaign '{data.name}'"]
     lines += [f"decision: {result['decision']}"] + [f"  - {r}" for r in result["reasons"]]
+    if verdict.depends_on_sentence:
+        lines += [f"  - {verdict.depends_on_sentence}"] + [f"    {d['sentence']}" for d in result["depends_on"]]
     lines += ["", "single controller at each tested level (Ms; IAE and peak after a load step, ratios to local "
               "SIMC; setpoint overshoot):", format_records(verdict.level_rows(), "table")]
     if verdict.schedule_points and result["decision"] == "schedule":

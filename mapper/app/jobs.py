@@ -53,9 +53,12 @@ def reading(source) -> Iterator[Session]:
         yield session
 
 
-def operating_map(store_path, *, campaign: str | None = None,
-                  against: str = "level") -> tuple[CampaignData, OperatingMap]:
+def operating_map(store_path, *, campaign: str | None = None, against: str = "level",
+                  influence: bool = True) -> tuple[CampaignData, OperatingMap]:
     """The operating map of a campaign (trends of gain, time constant, dead time, K/tau).
+
+    With ``influence`` (default) the map carries the single tests its conclusions hang on
+    (:func:`mapper.analysis.influence.with_influence`; ``depends_on`` in its summary rows).
 
     ``against="level"`` maps against the operating level in output units (the brief's
     definition); ``against="input"`` against the input's operating value instead (the mean
@@ -63,13 +66,13 @@ def operating_map(store_path, *, campaign: str | None = None,
     are left out. With several campaigns in the store one must be named.
     """
     with reading(store_path) as session:
-        return session.operating_map(campaign, against=against)
+        return session.operating_map(campaign, against=against, influence=influence)
 
 
 def parameters_at(store_path, level: float, *, campaign: str | None = None,
                   extrapolate: bool = False, against: str = "level") -> dict:
     """Gain, time constant and dead time at ``level`` with their 95 % band."""
-    _, opmap = operating_map(store_path, campaign=campaign, against=against)
+    _, opmap = operating_map(store_path, campaign=campaign, against=against, influence=False)
     return opmap.at(level, extrapolate=extrapolate)
 
 
@@ -244,7 +247,7 @@ def run_demo(out_dir: Path, *, png: bool = True, progress: Progress | None = Non
         session.forget()
         names = session.campaign_names()
         newest = names[-1]
-        _, opmap = session.operating_map(newest)
+        _, opmap = session.operating_map(newest, influence=False)
         lines += ["", f"Operating map of '{newest}':"]
         lines += format_records(opmap.summary(), "table", kind="map").splitlines()
         report = write_campaign_report(session, out_dir / "report.html", campaign=newest, png_dir=png_dir,
@@ -253,6 +256,8 @@ def run_demo(out_dir: Path, *, png: bool = True, progress: Progress | None = Non
         result = report.verdict.to_dict() if report.verdict is not None else {}
         lines += ["", f"Verdict: {result.get('decision')} (campaign '{newest}')"]
         lines += [f"  - {r}" for r in result.get("reasons", [])]
+        if report.verdict is not None and report.verdict.depends_on_sentence:
+            lines += [f"  - {report.verdict.depends_on_sentence}"]
         if len(names) > 1:
             moved = session.compare_two(names[0], newest)
             lines += ["", f"'{names[0]}' against '{newest}':"] + [f"  - {m['sentence']}" for m in moved[:6]]

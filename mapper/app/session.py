@@ -9,7 +9,7 @@ the verdict and the comparisons, so a command that needs the map three times bui
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -17,6 +17,7 @@ import numpy as np
 import pandas as pd
 
 from mapper.analysis.compare import compare_campaigns, compare_directions, compare_repeats
+from mapper.analysis.influence import verdict_influence, with_influence
 from mapper.analysis.opmap import OperatingMap, build_map
 from mapper.analysis.verdict import Verdict, decide
 from mapper.errors import MapperError, NotFoundError, UsageError
@@ -205,9 +206,13 @@ class Session:
         return data
 
     # -- what is built from a campaign -----------------------------------------------------
-    def operating_map(self, name: str | None = None, *,
-                      against: str = "level") -> tuple[CampaignData, OperatingMap]:
-        """The operating map of a campaign's included tests (built once per session)."""
+    def operating_map(self, name: str | None = None, *, against: str = "level",
+                      influence: bool = True) -> tuple[CampaignData, OperatingMap]:
+        """The operating map of a campaign's included tests (built once per session).
+
+        With ``influence`` (default) the map also carries the single tests its conclusions
+        hang on (:func:`mapper.analysis.influence.with_influence`).
+        """
         if against not in AGAINST:
             raise MapperError(f"cannot map against '{against}'", hint="use level or input")
         data = self.fitted_data(name)
@@ -218,7 +223,11 @@ class Session:
                 levels = self._cached(("input_levels",), self.store.input_levels)
                 rows["input_level"] = [levels.get(int(i), np.nan) for i in rows["test_id"]]
             return build_map(rows, against=AGAINST[against])
-        return data, self._cached(("map", data.name, against), build)
+        opmap = self._cached(("map", data.name, against), build)
+        if not influence:
+            return data, opmap
+        return data, self._cached(("map+influence", data.name, against),
+                                  lambda: with_influence(opmap, data.included))
 
     def verdict(self, name: str | None = None, *, ms_max: float = 2.0, slowdown_max: float = 2.0,
                 closed_loop_time: float | None = None, rule: str = "simc") -> tuple[CampaignData, Verdict]:
@@ -226,9 +235,14 @@ class Session:
         data, opmap = self.operating_map(name)
 
         def build() -> Verdict:
-            return decide(data.included, ms_max=ms_max, slowdown_max=slowdown_max,
-                          closed_loop_time=closed_loop_time, ranges=data.ranges or None, rule=rule,
-                          opmap=opmap)
+            verdict = decide(data.included, ms_max=ms_max, slowdown_max=slowdown_max,
+                             closed_loop_time=closed_loop_time, ranges=data.ranges or None, rule=rule,
+                             opmap=opmap)
+            depends = verdict_influence(data.included, decision=verdict.decision, opmap=opmap,
+                                        ms_max=ms_max, slowdown_max=slowdown_max,
+                                        closed_loop_time=closed_loop_time, ranges=data.ranges or None,
+                                        rule=rule)
+            return replace(verdict, depends_on=depends.entries, depends_on_sentence=depends.sentence)
         key = ("verdict", data.name, ms_max, slowdown_max, closed_loop_time, rule)
         return data, self._cached(key, build)
 

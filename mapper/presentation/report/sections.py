@@ -52,7 +52,8 @@ def verdict_section(page: Page, verdict: Mapping[str, Any] | None) -> None:
         return
     decision = verdict.get("decision")
     text = {"single": "One controller serves the whole tested range.",
-            "schedule": "A gain schedule is needed across the tested range."}.get(
+            "schedule": "A gain schedule is needed across the tested range.",
+            "insufficient": "Not enough tests to judge: no controller or schedule is handed over."}.get(
         str(decision), f"Decision: {decision}")
     page.add(f'<p class="decision">{esc(text)}</p>')
     reasons = verdict.get("reasons") or []
@@ -70,10 +71,21 @@ def verdict_section(page: Page, verdict: Mapping[str, Any] | None) -> None:
         page.add(table(["setting", "value"], list(controller.items())))
     points = verdict.get("points") or []
     if points:
+        header = ["level", "Ms", "gain margin", "phase margin (deg)", "IAE ratio (load step)", "peak ratio",
+                  "setpoint overshoot"]
         page.add("<h3>Single controller at each tested level</h3>")
-        page.add(table(["level", "Ms", "gain margin", "phase margin (deg)", "slowdown"],
-                       [(p.get("level"), p.get("ms"), p.get("gain_margin"),
-                         p.get("phase_margin_deg"), p.get("slowdown")) for p in points]))
+        page.add('<p class="muted">IAE and peak after a load step at the plant input, as ratios to a controller '
+                 'tuned at that level (SIMC); Ms from the exact frequency response.</p>')
+        page.add(table(header, [(p.get("level"), p.get("ms"), p.get("gain_margin"), p.get("phase_margin_deg"),
+                                 p.get("iae_ratio", p.get("slowdown")), p.get("peak_ratio"), p.get("overshoot"))
+                                for p in points]))
+        applied = verdict.get("schedule_points") or []
+        if applied and decision == "schedule":
+            page.add("<h3>Schedule as applied at each tested level</h3>")
+            page.add(table(["level", "kc", "ti"] + header[1:],
+                           [(p.get("level"), p.get("kc"), p.get("ti"), p.get("ms"), p.get("gain_margin"),
+                             p.get("phase_margin_deg"), p.get("iae_ratio"), p.get("peak_ratio"),
+                             p.get("overshoot")) for p in applied]))
     page.add(cautions_box() + "</section>")
 
 
