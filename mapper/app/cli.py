@@ -45,8 +45,9 @@ class _Command(TyperCommand):
                 param._usage_display_name = functools.partial(str, shown)  # type: ignore[method-assign]
 
 
-app = typer.Typer(add_completion=False, no_args_is_help=True, pretty_exceptions_enable=False,
-                  rich_markup_mode=None,
+app = typer.Typer(add_completion=False, no_args_is_help=True, pretty_exceptions_show_locals=False,
+                  pretty_exceptions_enable=False,
+                  rich_markup_mode=None,  # plain help: loading rich costs more than the rest of start-up
                   help="Step-test campaigns to FOPDT models, an operating map and a "
                        "single-controller-or-schedule verdict.")
 command = functools.partial(app.command, cls=_Command)
@@ -398,6 +399,10 @@ def report_command(
                                             help="an older campaign to compare against"),
     ms_max: float = typer.Option(2.0, "--ms-max", metavar="MS"),
     slowdown_max: float = typer.Option(2.0, "--slowdown-max", metavar="FACTOR"),
+    prepared_by: str | None = typer.Option(None, "--prepared-by", metavar="NAME",
+                                           help="name for the record block (blank to sign on paper)"),
+    checked_by: str | None = typer.Option(None, "--checked-by", metavar="NAME",
+                                          help="name for the record block (blank to sign on paper)"),
 ) -> None:
     """Write the self-contained HTML report (opens offline)."""
     from mapper.app.jobs import write_campaign_report
@@ -405,6 +410,7 @@ def report_command(
         data = session.fitted_data(campaign)
         outcome = write_campaign_report(session, out, campaign=data.name, png_dir=png_dir, ms_max=ms_max,
                                         slowdown_max=slowdown_max, compare_with=compare_with,
+                                        prepared_by=prepared_by, checked_by=checked_by,
                                         progress=_progress("writing the report"))
     lines = [f"report on campaign '{data.name}' written to {outcome.path} "
              f"({outcome.size_bytes / 1e6:.2f} MB)"]
@@ -418,7 +424,7 @@ def report_command(
 def demo_command(
     out: Path = typer.Option(Path("mapper_demo"), "--out", metavar="FOLDER",
                              help="folder for the demo store, report and schedule"),
-    png: bool = typer.Option(True, "--png/--no-png", help="also write the charts as PNG"),
+    png: bool = typer.Option(False, "--png/--no-png", help="also write the charts as PNG (a few seconds more)"),
 ) -> None:
     """Run the whole job on the bundled sample campaign into a fresh folder."""
     from mapper.app.jobs import run_demo

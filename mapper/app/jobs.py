@@ -148,10 +148,12 @@ class ReportOutcome:
 def write_campaign_report(store_path, out: Path, *, campaign: str | None = None,
                           png_dir: Path | None = None, ms_max: float = 2.0,
                           slowdown_max: float = 2.0, compare_with: str | None = None,
-                          schedule_out: Path | None = None,
+                          schedule_out: Path | None = None, prepared_by: str | None = None,
+                          checked_by: str | None = None,
                           progress: Progress | None = None) -> ReportOutcome:
     """The self-contained HTML report of a campaign (and PNG charts when ``png_dir``; the
-    schedule CSV too when ``schedule_out``). The store is opened once for the whole report."""
+    schedule CSV too when ``schedule_out``); ``prepared_by`` and ``checked_by`` fill the
+    record block. The store is opened once for the whole report."""
     from mapper.presentation.report import write_report
     with reading(store_path) as session:
         data, verdict = verdict_for(session, campaign=campaign, ms_max=ms_max,
@@ -176,7 +178,7 @@ def write_campaign_report(store_path, out: Path, *, campaign: str | None = None,
         info = write_report(out, campaign=summary, params=data.params, trend=opmap.trend_frame(),
                             map_summary=opmap.summary(), verdict=verdict.report_dict(),
                             comparisons=found, tests=tests,
-                            png_dir=png_dir)
+                            png_dir=png_dir, prepared_by=prepared_by, checked_by=checked_by)
     return ReportOutcome(Path(info.path), info.size_bytes, tuple(info.png_files), verdict)
 
 
@@ -211,7 +213,7 @@ class DemoOutcome:
     lines: list[str]
 
 
-def run_demo(out_dir: Path, *, png: bool = True, progress: Progress | None = None) -> DemoOutcome:
+def run_demo(out_dir: Path, *, png: bool = False, progress: Progress | None = None) -> DemoOutcome:
     """The whole job on the sample campaign, into a fresh store inside ``out_dir``.
 
     Never touches any other store: the demo store lives in ``out_dir`` and is replaced on
