@@ -46,7 +46,7 @@ def test_view_has_every_public_column_and_plain_client_can_query(tmp_path, small
     assert [lv for lv, _ in levels] == [30.0, 30.0, 60.0, 60.0]  # campaign file wins
     assert [d for _, d in levels] == ["up", "down", "up", "down"]
     assert samples == 4 * 200
-    assert version == "1"
+    assert version == "2"  # exclusions and notes (issue 15)
 
 
 def test_params_json_and_filters(tmp_path, small_campaign):
