@@ -15,7 +15,7 @@ __all__ = [
     "MIN_AFTER_STEP_SAMPLES",
     "MIN_RESPONSE_SAMPLES",
     "SETTLE_TIME_CONSTANTS",
-    "MIN_RESPONSE_NOISE_BANDS",
+    "MIN_RESPONSE_SIGNAL_TO_NOISE",
     "NOISE_BAND_SDS",
     "MIN_SAMPLES_PER_TIME_CONSTANT",
     "DRIFT_FRACTION",
@@ -43,7 +43,9 @@ MIN_RESPONSE_SAMPLES = 3  # the fitted response must start at least this many sa
 
 # --- rules of thumb for judging a test (common practice) ------------------------------------
 SETTLE_TIME_CONSTANTS = 4.0  # 98 % of the change is reached after dead time + 4 tau
-MIN_RESPONSE_NOISE_BANDS = 5.0  # step response should be several noise bands (4 sd) wide
+# signal-to-noise ratio (output change / residual sd) under which a response is small: the
+# documented threshold of about 4-5 (common practice); at 4 (one noise band) it is rejected
+MIN_RESPONSE_SIGNAL_TO_NOISE = 5.0
 NOISE_BAND_SDS = 4.0  # peak-to-peak noise band taken as +-2 sd
 MIN_SAMPLES_PER_TIME_CONSTANT = 10.0
 DRIFT_FRACTION = 0.10  # pre-step drift, carried over the test, against the response

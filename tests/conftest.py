@@ -115,6 +115,7 @@ def demo_run(tmp_path_factory) -> dict:
         imported = run_mapper("import", campaign, db=store)
         assert imported.returncode == 0, imported.stderr
     before = {own: own.read_bytes(), named: named.read_bytes()}
-    result = run_mapper("demo", "--out", "demo_out", cwd=work, env={"MAPPER_DB": str(named)}, timeout=600)
+    result = run_mapper("demo", "--out", "demo_out", "--png", cwd=work, env={"MAPPER_DB": str(named)},
+                        timeout=600)
     assert result.returncode == 0, result.stdout + result.stderr
     return {"out": work / "demo_out", "result": result, "work": work, "stores_before": before}

@@ -449,3 +449,18 @@ def test_closed_loop_chart_three_levels_two_steps_three_controllers():
     encoding = spec["spec"]["encoding"]
     assert encoding["strokeDash"]["field"] == "controller"  # not by colour alone
     assert encoding["color"]["scale"]["domain"] == ["single", "schedule", "local"]
+
+
+def test_schedule_chart_of_interpolation_nodes_is_linear():
+    # Rows with "band" are interpolation nodes: two rows with equal settings hold a band, and the
+    # chart joins nodes linearly as the table tells the user to apply it.
+    nodes = {"schedule": [
+        {"level": 30.0, "level_from": 20.0, "level_to": 45.0, "band": 1, "kc": 2.0},
+        {"level": 60.0, "level_from": 45.0, "level_to": 70.0, "band": 2, "kc": 1.5},
+        {"level": 65.0, "level_from": 45.0, "level_to": 70.0, "band": 2, "kc": 1.5},
+        {"level": 80.0, "level_from": 70.0, "level_to": 80.0, "band": 3, "kc": 1.0}]}
+    spec = spec_of(charts.schedule_chart(nodes, units=UNITS))
+    line = spec["layer"][0]
+    assert line["mark"]["interpolate"] == "linear"
+    assert [(v["level"], v["kc"]) for v in dataset_rows(spec, line["data"])] == [
+        (20.0, 2.0), (30.0, 2.0), (60.0, 1.5), (65.0, 1.5), (80.0, 1.0), (80.0, 1.0)]

@@ -57,13 +57,35 @@ def test_demo_writes_verdict_report_and_schedule(demo, demo_run):
     assert len(specs) >= 4
     assert len(specs) == report.count('class="chart"')
     assert all("vega-lite" in spec["$schema"] for spec in specs)
+    # one step-response chart per test of the newest campaign, and the libraries inline (opens offline)
+    tests = len(list((SAMPLE / "exchanger_2026").glob("*.csv")))
+    assert report.count('aria-label="Step response of ') == tests
+    assert "window.vegaEmbed" in report or "vegaEmbed=" in report
     assert NEW in report
+    # tests titled by their data files, and the campaign described
+    assert "<h3>t080_up_2.csv " in report
+    assert "the steam valve stepped open-loop, in manual" in report
     with (demo / "schedule.csv").open() as handle:
         lines = handle.read().splitlines()
     assert any("CAUTION" in line for line in lines if line.startswith("#"))
     rows = list(csv.DictReader(line for line in lines if not line.startswith("#")))
     assert len(rows) >= 2 and all(float(r["kc"]) > 0 and float(r["ti"]) > 0 for r in rows)
     assert (demo / "charts" / "operating_map.png").stat().st_size > 10_000
+    # the charts of the tests are named after their data files
+    assert (demo / "charts" / "t080_up_2.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_report_command_fills_the_record_block(demo, tmp_path):
+    out = tmp_path / "signed.html"
+    result = run_mapper("report", "--campaign", NEW, "--out", out, "--prepared-by", "R. Field",
+                        "--checked-by", "S. Lead", db=demo / "demo.duckdb")
+    assert result.returncode == 0, result.stderr
+    page = out.read_text(encoding="utf-8")
+    record = re.search(r'<section id="record">(.*?)</section>', page, flags=re.S).group(1)
+    assert "<td>R. Field</td>" in record and "<td>S. Lead</td>" in record
+    outside_scripts = re.sub(r"<(script|style)\b[^>]*>.*?</\1>", " ", page, flags=re.S)
+    assert "kc_dimensionless" not in outside_scripts and "serves_whole_range" not in outside_scripts
+    assert not re.search(r">\s*(True|False|None)\s*<", outside_scripts)
 
 
 def test_at_inside_and_outside_the_range(demo):
@@ -86,8 +108,18 @@ def test_verdict_json_shape(demo):
     assert verdict["decision"] in ("single", "schedule")
     assert verdict["reasons"] and all(isinstance(r, str) for r in verdict["reasons"])
     assert set(verdict["variation"]["gain"]) >= {"min", "max", "ratio", "significant"}
-    assert {"level", "ms", "gain_margin", "phase_margin_deg", "slowdown"} <= set(verdict["points"][0])
+    assert {"level", "ms", "gain_margin", "phase_margin_deg", "slowdown", "iae_ratio", "peak_ratio",
+            "overshoot"} <= set(verdict["points"][0])
     assert {"level", "kc", "ti"} <= set(verdict["schedule"][0])
+    assert len(verdict["reason_codes"]) == len(verdict["reasons"])
+    assert verdict["decision"] != "schedule" or "no_single_controller" in verdict["reason_codes"]
+
+
+def test_verdict_prints_iae_ratio_peak_and_ms_per_level(demo):
+    result = run_mapper("verdict", "--campaign", NEW, db=demo / "demo.duckdb")
+    assert result.returncode == 0, result.stderr
+    header = next(line for line in result.stdout.splitlines() if "iae_ratio" in line)
+    assert "peak_ratio" in header and "ms" in header.split()
 
 
 def test_map_and_compare_commands(demo):

@@ -346,3 +346,10 @@ def test_fit_result_round_trips_through_its_row():
     np.testing.assert_allclose(back.fitted(t, u), r.fitted(t, u))
     with pytest.raises(TypeError):  # wide record: no positional construction
         FitResult("fopdt", "least_squares", 1.0)  # type: ignore[misc]
+
+
+def test_fit_result_fields_are_the_registered_fit_columns():
+    from mapper.columns import FIT_LIST_NAMES, FIT_VALUE_NAMES
+
+    fields = {f.name for f in dataclasses.fields(FitResult)}
+    assert set(FIT_VALUE_NAMES) | set(FIT_LIST_NAMES) | {"settings"} == fields

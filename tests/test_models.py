@@ -3,12 +3,15 @@
 from __future__ import annotations
 
 import math
+import subprocess
+import sys
 
 import numpy as np
 import pytest
 from scipy import signal
 
 from mapper.identification.models import (
+    first_order_filter,
     fopdt_sensitivities,
     simulate_fopdt,
     simulate_integrating,
@@ -131,3 +134,59 @@ def test_split_dead_time_and_bad_arguments():
         zoh_coefficients(1.0, 0.0, 1.0, 1.0)
     with pytest.raises(ValueError):
         simulate_fopdt(np.ones(5), 1.0, 1.0, 1.0, -1.0)
+
+
+# --- the own zero-order-hold filter against scipy (issue 17) ------------------------------
+
+
+@pytest.mark.parametrize("n", [1, 2, 7, 40, 600, 5000])
+def test_first_order_filter_matches_scipy_lfilter(n):
+    # reference: scipy.signal.lfilter([1], [1, -a], x), the textbook direct-form recursion
+    rng = np.random.default_rng(n)
+    x = rng.normal(size=n) * 10.0 ** rng.uniform(-3, 3)
+    for a in (0.0, 1e-30, 0.001, 0.05, 0.0869, 0.087, 0.3, math.exp(-1 / 40), 0.999, 0.999999, 1.0):
+        ref = signal.lfilter([1.0], [1.0, -a], x)
+        got = first_order_filter(x, a)
+        scale = max(float(np.max(np.abs(ref))), 1e-300)
+        assert np.max(np.abs(got - ref)) <= 1e-11 * scale, (n, a)
+    rows = rng.normal(size=(3, n))
+    np.testing.assert_allclose(first_order_filter(rows, 0.7), signal.lfilter([1.0], [1.0, -0.7], rows, axis=1),
+                               rtol=1e-11, atol=1e-12)
+    with pytest.raises(ValueError):
+        first_order_filter(x, 1.5)
+
+
+@pytest.mark.parametrize("dead_time", [0.0, 0.3, 2.0, 7.6])
+def test_fopdt_response_matches_the_delayed_zoh_transfer_function_in_scipy(dead_time):
+    # y[k+1] = a y[k] + b1 u[k-d] + b2 u[k-d-1]: numerator z^-(d+1) (b1 + b2 z^-1) over
+    # (1 - a z^-1), filtered by scipy.signal.lfilter; a and b1 (no fraction) also from
+    # scipy.signal.cont2discrete of K/(tau s + 1) with ZOH
+    T, K, tau = 0.5, 1.7, 6.0
+    rng = np.random.default_rng(4)
+    u = np.cumsum(rng.normal(size=400))
+    a, b1, b2, d = zoh_coefficients(K, tau, dead_time, T)
+    numerator = np.zeros(d + 3)
+    numerator[d + 1], numerator[d + 2] = b1, b2
+    ref = signal.lfilter(numerator, [1.0, -a], u - u[0])
+    np.testing.assert_allclose(simulate_fopdt(u, T, K, tau, dead_time), ref, rtol=1e-10, atol=1e-10)
+    num, den, _ = signal.cont2discrete(([K], [tau, 1.0]), T, method="zoh")
+    assert a == pytest.approx(-den[1], rel=1e-12)
+    if dead_time == 0.0:
+        assert b1 == pytest.approx(num[0][-1], rel=1e-12) and b2 == 0.0
+    ramp = signal.lfilter([0.0, T], [1.0, -1.0], u - u[0])  # exact ZOH integrator
+    np.testing.assert_allclose(simulate_integrating(u, T, 1.0, 0.0), ramp, rtol=1e-10, atol=1e-9)
+
+
+def test_fitting_does_not_import_scipy_signal():
+    # issue 17: importing scipy.signal costs most of a second per process
+    code = (
+        "import sys, numpy as np\n"
+        "from mapper.identification.fitting import fit_one\n"
+        "t = np.arange(300.0); u = 40 + 10 * (t >= 50)\n"
+        "y = 25 + 2 * 10 * (1 - np.exp(-np.clip(t - 53, 0, None) / 30))\n"
+        "row = fit_one((1, t, u, y, None, None, 'least_squares'))\n"
+        "assert row['model'] == 'fopdt'\n"
+        "print('scipy.signal' in sys.modules)\n"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "False"

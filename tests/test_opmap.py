@@ -10,10 +10,10 @@ import pytest
 from scipy import stats
 from scipy.integrate import solve_ivp
 
-from mapper.errors import DataError, OutOfRangeError
 from mapper.analysis.compare import compare_campaigns, compare_directions, compare_repeats
 from mapper.analysis.opmap import build_map, parameter_values
 from mapper.analysis.trends import cluster_levels, fit_trend
+from mapper.errors import DataError, OutOfRangeError
 
 Z = 1.959963984540054
 

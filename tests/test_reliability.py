@@ -52,7 +52,7 @@ def snapshot(db: Path) -> dict[str, list[tuple]]:
             columns = [r[0] for r in con.execute(f"DESCRIBE {table}").fetchall()
                        if r[0] not in ("imported_at", "fitted_at", "created_at")]
             out[table] = sorted(map(repr, con.execute(
-                "SELECT " + ", ".join(f"\"{c}\"" for c in columns) + f" FROM {table}").fetchall()))
+                "SELECT " + ", ".join(f'"{c}"' for c in columns) + f" FROM {table}").fetchall()))
     return out
 
 

@@ -23,6 +23,20 @@ EVIL = "<script>alert(1)</script>"
 BREAKOUT = "</script><script>alert(2)</script>"
 PERIOD = 0.5
 STEP_TIME = 20.0
+DESCRIPTION = "Level loop LC-7 on the feed tank; steps on the inlet valve, night shift."
+QUIET_REPEAT = "At level 50 (up steps), 2 repeats give gain 1.9 to 2.1: spread consistent."
+LOUD_DIRECTION = f"At level 80 the gain differs between up and down steps {EVIL}."
+COMPARISONS = [
+    {"level": 50.0, "direction": "up", "parameter": "gain", "n_tests": 2, "test_ids": [1, 2],
+     "min": 1.9, "max": 2.1, "consistent": True, "p_value": 0.45, "sentence": QUIET_REPEAT},
+    {"level": 80.0, "parameter": "gain", "up": 2.6, "down": 2.2, "difference": 0.4, "z": 3.1,
+     "differs": True, "sentence": LOUD_DIRECTION},
+    {"level": 80.0, "parameter": "dead_time", "up": 3.0, "down": 3.1, "difference": -0.1, "z": 0.4,
+     "differs": False, "sentence": "At level 80 up and down steps agree on dead time."},
+    {"parameter": "time_constant", "campaign_a": "spring 2024", "campaign_b": "spring 2026",
+     "moved": False, "levels": [], "level": 60.0, "value_a": 15.0, "value_b": 16.0, "change": 0.067,
+     "z": 0.8, "sentence": "Time constant did not move significantly between the campaigns."},
+]
 
 
 def fopdt_test(test_id, level, direction, gain, time_constant, dead_time, *, quality="good",
@@ -56,6 +70,9 @@ def inputs():
     params = pd.DataFrame([{k: v for k, v in t.items() if k not in ("note", "t", "u", "y",
                                                                     "fitted", "step_time")}
                            for t in tests])
+    params["excluded"] = params["test_id"] == "R80down"
+    params["exclusion_reason"] = np.where(params["excluded"], "Valve sticking, see shift log", None)
+    params["note"] = ""
     levels = np.linspace(20, 80, 7)
     trend = pd.DataFrame({"parameter": "gain", "level": levels, "value": 1 + levels / 50,
                           "lo": 0.9 * (1 + levels / 50), "hi": 1.1 * (1 + levels / 50)})
@@ -63,7 +80,9 @@ def inputs():
         "decision": "schedule",
         "reasons": ["Ms of the single controller reaches 2.4 at level 80, above the limit 2.0."],
         "variation": {"gain": {"min": 1.4, "max": 2.6, "ratio": 1.86, "significant": True}},
-        "controller": {"kc": 1.2, "ti": 15.0},
+        "controller": {"kc": 1.2, "ti": 15.0, "ti_min": 0.25, "action": "reverse",
+                       "closed_loop_time": None, "kc_dimensionless": 1.5,
+                       "proportional_band": 66.7, "serves_whole_range": False, "local_rule": "simc"},
         "points": [{"level": 20.0, "ms": 1.5, "gain_margin": 3.1, "phase_margin_deg": 62.0,
                     "slowdown": 1.0},
                    {"level": 80.0, "ms": 2.4, "gain_margin": 1.8, "phase_margin_deg": 38.0,
@@ -76,21 +95,27 @@ def inputs():
         "ms_max": 2.0,
     }
     return dict(
-        campaign={"name": f"Feed tank {EVIL}", "n_tests": len(tests),
+        campaign={"name": f"Feed tank {EVIL}", "n_tests": len(tests), "description": DESCRIPTION,
                   "units": {"input": "%", "output": "cm"}, "notes": ["night shift", EVIL]},
         params=params, trend=trend,
         map_summary=[{"parameter": "gain", "shape": "linear", "min": 1.4, "max": 2.6,
                       "ratio": 1.86, "significant": True, "reason": "outside the 95 % band"}],
         verdict=verdict,
-        comparisons=[{"kind": "directions", "sentence": f"Up and down agree at level 80 {EVIL}."}],
+        comparisons=COMPARISONS,
         tests=tests)
 
 
 @pytest.fixture(scope="module")
 def written(inputs, tmp_path_factory):
     path = tmp_path_factory.mktemp("report") / "report.html"
-    info = report.write_report(path, **inputs)
+    info = report.write_report(path, prepared_by="A. Engineer", checked_by=None, **inputs)
     return info, path.read_text(encoding="utf-8")
+
+
+def visible_text(page: str) -> str:
+    """The words a reader sees: the page without scripts, styles and tags, entities decoded."""
+    body = re.sub(r"<(script|style)\b[^>]*>.*?</\1>", " ", page, flags=re.S | re.I)
+    return html.unescape(re.sub(r"<[^>]+>", " ", body))
 
 
 # ------------------------------------------------------------- content
@@ -101,7 +126,8 @@ def test_report_info_and_sections(written):
     # map, schedule, margins, overlay and four tests
     assert info.n_charts == 8
     order = [text.index(f'<section id="{s}">') for s in
-             ("summary", "verdict", "map", "comparisons", "schedule", "tests", "methods", "cautions")]
+             ("record", "summary", "verdict", "excluded", "map", "comparisons", "schedule", "tests",
+              "methods", "cautions")]
     assert order == sorted(order)
     assert "A gain schedule is needed" in text
     assert "Ms of the single controller reaches 2.4" in text
@@ -109,9 +135,64 @@ def test_report_info_and_sections(written):
 
 def test_report_lists_rejected_then_suspect_then_good(written):
     _, text = written
-    positions = [text.index(f"<h3>{name} ") for name in
+    # tests are titled by their data file
+    positions = [text.index(f"<h3>{name}.csv ") for name in
                  ("R80down", html.escape(EVIL), "G20up", "G50down")]
     assert positions == sorted(positions)
+
+
+def section(text: str, name: str) -> str:
+    return re.search(rf'<section id="{name}">(.*?)</section>', text, flags=re.S).group(1)
+
+
+def test_report_is_a_record_with_names_dates_and_blanks(written):
+    _, text = written
+    record = visible_text(section(text, "record"))
+    date = re.search(r"Written (\d{4}-\d{2}-\d{2})", text).group(1)
+    assert re.search(rf"Prepared by\s+A\. Engineer\s+{date}", record)
+    assert re.search(r"Checked by\s+Blank fields", record)  # nothing filled in: room to sign
+
+
+def test_report_shows_the_campaign_description(written):
+    _, text = written
+    assert DESCRIPTION in visible_text(section(text, "summary"))
+
+
+def test_report_lists_excluded_tests_with_reasons(written):
+    _, text = written
+    excluded = visible_text(section(text, "excluded"))
+    assert "R80down.csv" in excluded and "Valve sticking, see shift log" in excluded
+    assert "G20up" not in excluded
+    assert 'class="badge excluded"' in text
+    # the excluded test is counted apart and not among the tests used
+    summary = visible_text(section(text, "summary"))
+    assert re.search(r"Tests excluded by the engineer\s+1\b", summary)
+    assert re.search(r"Quality of the tests used\s+2 good, 1 suspect, 0 rejected", summary)
+
+
+def test_comparisons_are_tables_with_sentences_for_notable_rows_only(written):
+    _, text = written
+    part = section(text, "comparisons")
+    assert part.count("<table>") == 3  # repeats, directions, campaigns
+    shown = visible_text(part)
+    assert "At level 80 the gain differs between up and down steps" in shown
+    assert QUIET_REPEAT not in shown
+    assert "agree on dead time" not in shown
+    assert "did not move significantly" not in shown
+    assert "beyond the 95 % uncertainty (3.1 standard errors)" in shown
+    assert "+7 %" in shown  # the change between campaigns, as a percentage
+
+
+def test_report_shows_no_field_names_or_python_values(written):
+    _, text = written
+    shown = visible_text(text)
+    for raw in ("kc_dimensionless", "serves_whole_range", "closed_loop_time", "time_constant",
+                "dead_time", "level_from", "ti_min", "phase_margin_deg", "fopdt", "None", "nan"):
+        assert not re.search(rf"\b{raw}\b", shown), raw
+    assert not re.search(r"\b(True|False)\b", shown)
+    # the same settings, in words
+    assert "Controller gain in % of span per % of span" in shown
+    assert re.search(r"Serves the whole tested range\s+no", shown)
 
 
 def test_report_names_methods_sources_and_cautions(written):
@@ -184,8 +265,9 @@ def test_png_dir_writes_every_chart(inputs, tmp_path):
         assert png.parent == tmp_path / "png"
         assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification)
         assert "<" not in png.name and "/" not in png.stem
-    assert {"operating_map.png", "overlay.png", "schedule.png", "margins.png"} <= {
-        p.name for p in info.png_files}
+    # the charts of the tests are named after their data files
+    assert {"operating_map.png", "overlay.png", "schedule.png", "margins.png", "G20up.png",
+            "G50down.png", "R80down.png"} <= {p.name for p in info.png_files}
 
 
 def test_png_export_includes_the_closed_loop_chart(inputs, tmp_path):
@@ -221,7 +303,7 @@ def test_streamed_tests_are_held_one_at_a_time(inputs, tmp_path):
     text = info.path.read_text(encoding="utf-8")
     assert "Every test (12)" in text and info.n_charts == 4 + 12
     # a stream is shown in the order given (the caller sorts it), the overlay above the cards
-    positions = [text.index(f"<h3>S{index:02d} ") for index in range(12)]
+    positions = [text.index(f"<h3>S{index:02d}.csv ") for index in range(12)]
     assert positions == sorted(positions)
     assert text.index('aria-label="All tests normalised on one plot"') < positions[0]
     blocks = re.findall(r'<script type="application/json" id="spec-(\d+)">(.*?)</script>', text,
@@ -309,6 +391,17 @@ def test_report_renders_offline_in_a_browser(written, tmp_path):
     assert "&lt;/script&gt;&lt;script&gt;alert(2)&lt;/script&gt;" in dom
     assert "&lt;script&gt;alert(1)&lt;/script&gt;" in dom
     assert "<script>alert(" not in dom
+    # the record's own sections are drawn, and nothing a reader sees is a field name or a Python value
+    shown = visible_text(dom)
+    for heading in ("Record", "Excluded tests", "Comparisons", "Up against down steps"):
+        assert re.search(rf"<h[23][^>]*>{heading}</h[23]>", dom), heading
+    assert "A. Engineer" in shown and "Valve sticking, see shift log" in shown and DESCRIPTION in shown
+    assert "kc_dimensionless" not in shown and "serves_whole_range" not in shown
+    assert not re.search(r"\b(True|False|None)\b", shown)
+    # chart text (titles, axes, legends) is part of what is seen: it speaks plainly too
+    svg_text = " ".join(re.findall(r"<text[^>]*>([^<]*)</text>", dom))
+    assert "G20up.csv: level 20 cm, up step" in svg_text
+    assert not re.search(r"\b(test_id|time_constant|dead_time|not_settled)\b", svg_text)
 
 
 def test_browser_helper_sees_script_errors(tmp_path):

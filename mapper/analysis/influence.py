@@ -33,7 +33,7 @@ from mapper.records import plain
 __all__ = ["Dependence", "InfluenceReport", "map_influence", "verdict_influence", "with_influence"]
 
 MAP_CANDIDATES = 200  # tests refitted one by one for the map (largest residuals first beyond this)
-VERDICT_CANDIDATES = 8  # decisions rerun without one test (most influential on the map first)
+VERDICT_CANDIDATES = 4  # decisions rerun without one test (most influential on the map first)
 # A map value counts as changed when it leaves the map's 95 % band AND moves by more than this share:
 # a tenth, half of the +-20 % about the centre that RELEVANT_CHANGE_RATIO (1.4) spans.
 VALUE_CHANGE = 0.10
@@ -260,8 +260,8 @@ def verdict_influence(params: pd.DataFrame, *, decision: str | None = None, opma
     opmap : OperatingMap, optional
         The map built from ``params`` (used to rank the tests).
     candidates : int
-        How many tests to leave out in turn, most influential on the map first (default 8); outliers
-        against the trend come first.
+        How many tests to leave out in turn (default 4): outliers against the trend and tests the map
+        depends on first, then the tests farthest from the map in their own standard deviations.
     **decide_options
         Passed to :func:`mapper.analysis.verdict.decide` (limits, rule, ranges, against).
 
@@ -281,14 +281,18 @@ def verdict_influence(params: pd.DataFrame, *, decision: str | None = None, opma
     base_map = opmap or build_map(params, against=against)
     if decision is None:
         decision = decide(params, **decide_options).decision
-    influence = map_influence(params, against=against, opmap=base_map)
+    # A map from with_influence already carries its dependences; otherwise find them.
+    known = base_map.depends_on if base_map.influence_sentence else None
+    map_entries = known if known is not None else map_influence(params, against=against, opmap=base_map).entries
     score: dict = {}
-    for entry in influence.entries:
+    for entry in map_entries:
         bonus = 1e6 if entry.change in ("outlier", "significance", "enough_data") else 0.0
         score[entry.test_id] = max(score.get(entry.test_id, 0.0), entry.shift + bonus)
     frame = usable_tests(params, against)
+    frame = frame[frame["model"] == base_map.model]
     ids = [int(i) for i in frame["test_id"]] if "test_id" in frame.columns else []
-    order = sorted(ids, key=lambda i: -score.get(i, 0.0))[:max(int(candidates), 0)]
+    distance = dict(zip(ids, _distance(base_map, frame)))
+    order = sorted(ids, key=lambda i: (-score.get(i, 0.0), -distance.get(i, 0.0)))[:max(int(candidates), 0)]
     accepts_map = "opmap" in inspect.signature(decide).parameters
     entries = []
     keep = ~excluded_mask(params)
@@ -308,7 +312,9 @@ def verdict_influence(params: pd.DataFrame, *, decision: str | None = None, opma
             else:
                 rest = params[keep & (params["test_id"] != test_id).to_numpy()]
                 if accepts_map:
-                    options["opmap"] = build_map(rest, against=against)
+                    # The full map's outliers stay out; no new outlier search per rerun.
+                    options["opmap"] = build_map(inliers[inliers["test_id"] != test_id], against=against,
+                                                 robust=False)
                 other, verb = decide(rest, **options).decision, "left out"
         except Exception as error:  # noqa: BLE001 - no verdict without the test: it decides the verdict
             other, verb = f"no verdict ({error})", "left out"

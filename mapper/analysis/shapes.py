@@ -25,8 +25,8 @@ from mapper.constants import Z95
 # (t quantile stdtrit, F tail fdtrc, chi-square tail chdtrc) at a hundredth of the call cost, which
 # matters because trends are refitted once per test for the outlier and influence searches.
 
-__all__ = ["Reference", "Shape", "ShapeFit", "candidate_shapes", "fit_shape", "pure_error_scatter",
-           "reference_fit"]
+__all__ = ["Reference", "Shape", "ShapeFit", "candidate_shapes", "fit_shape", "inside_pooled", "pooled_levels",
+           "pure_error_scatter", "reference_fit"]
 
 PIECEWISE_MAX_LEVELS = 6  # piecewise linear through level means is offered when levels are few
 
@@ -303,3 +303,33 @@ def fit_shape(shape: Shape, z, value, sigma, labels, reference: Reference | None
                     extra_variance=float(s2), dof=int(scatter_dof if s2 > 0 else dof), chi_square=chi2,
                     lack_of_fit_p=lack_of_fit_p, significance_p=significance_p, aicc=float(aicc),
                     quantile=quantile)
+
+
+def pooled_levels(fit: ShapeFit, y, sigma, labels):
+    """Weighted mean of each level's tests and its standard error, in the space of ``fit``.
+
+    The weights carry the fit's extra scatter; the standard error is widened by the Birge ratio
+    (Birge, 1932) where a level's own repeats scatter beyond that.
+    """
+    eta, s = fit.shape.to_space(y, sigma)
+    weight = 1.0 / (s ** 2 + fit.extra_variance)
+    total = np.bincount(labels, weight)
+    mean = np.bincount(labels, weight * eta) / total
+    count = np.bincount(labels)
+    chi2 = np.bincount(labels, weight * (eta - mean[labels]) ** 2)
+    birge = np.where(count > 1, chi2 / np.maximum(count - 1, 1), 1.0)
+    return mean, np.sqrt(np.maximum(birge, 1.0) / total), count
+
+
+def inside_pooled(fit: ShapeFit, z, y, sigma, labels) -> bool:
+    """Whether the fitted shape stays inside every tested level's pooled interval, family-wise 95 %.
+
+    A test of the largest standardised distance over the ``m`` levels (two-sided Bonferroni point
+    at 5 %/m): it catches a shape that misses one level, which the F test of lack of fit, spread over
+    all levels, can pass when repeats are few.
+    """
+    mean, se, _ = pooled_levels(fit, y, sigma, labels)
+    at = np.bincount(labels, z) / np.bincount(labels)
+    eta = fit.shape.design(at) @ np.asarray(fit.coefficients)
+    limit = float(-special.ndtri(0.025 / mean.size))
+    return bool(np.all(np.abs(eta - mean) <= limit * se * (1 + 1e-9) + 1e-12 * np.abs(mean)))

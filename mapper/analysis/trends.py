@@ -17,7 +17,15 @@ from dataclasses import dataclass, replace
 import numpy as np
 from scipy import special
 
-from mapper.analysis.shapes import Shape, ShapeFit, candidate_shapes, fit_shape, reference_fit
+from mapper.analysis.shapes import (
+    Shape,
+    ShapeFit,
+    candidate_shapes,
+    fit_shape,
+    inside_pooled,
+    pooled_levels,
+    reference_fit,
+)
 from mapper.constants import RELEVANT_CHANGE_RATIO, Z95
 from mapper.errors import DataError
 
@@ -214,7 +222,7 @@ def _core_fit(z, y, sigma, labels) -> _Core:
     fits = [fit_shape(s, z, y, sigma, labels, reference[s.space]) for s in shapes]
     # Adequate: passes the lack-of-fit test and stays inside the tested levels' pooled intervals.
     adequate = [f for f in fits if (f.lack_of_fit_p is None or f.lack_of_fit_p >= LACK_OF_FIT_LEVEL)
-                and (f.lack_of_fit_p is None or _inside_pooled(f, z, y, sigma, labels))]
+                and (f.lack_of_fit_p is None or inside_pooled(f, z, y, sigma, labels))]
     misfit = not adequate
     if misfit:
         adequate = [max(fits, key=lambda f: f.lack_of_fit_p or 0.0)]
@@ -342,39 +350,9 @@ def _levels_to_add(level_means: np.ndarray, has_repeats: bool) -> tuple:
     return tuple(sorted(set(ends + (mid,)))) if has_repeats else ends + (mid,)
 
 
-def _pooled(fit: ShapeFit, y, sigma, labels):
-    """Weighted mean of each level's tests and its standard error, in the space of ``fit``.
-
-    The weights carry the fit's extra scatter; the standard error is widened by the Birge ratio
-    (Birge, 1932) where a level's own repeats scatter beyond that.
-    """
-    eta, s = fit.shape.to_space(y, sigma)
-    weight = 1.0 / (s ** 2 + fit.extra_variance)
-    total = np.bincount(labels, weight)
-    mean = np.bincount(labels, weight * eta) / total
-    count = np.bincount(labels)
-    chi2 = np.bincount(labels, weight * (eta - mean[labels]) ** 2)
-    birge = np.where(count > 1, chi2 / np.maximum(count - 1, 1), 1.0)
-    return mean, np.sqrt(np.maximum(birge, 1.0) / total), count
-
-
-def _inside_pooled(fit: ShapeFit, z, y, sigma, labels) -> bool:
-    """Whether the fitted shape stays inside every tested level's pooled interval, family-wise 95 %.
-
-    A test of the largest standardised distance over the ``m`` levels (two-sided Bonferroni point
-    at 5 %/m): it catches a shape that misses one level, which the F test of lack of fit, spread over
-    all levels, can pass when repeats are few.
-    """
-    mean, se, _ = _pooled(fit, y, sigma, labels)
-    at = np.bincount(labels, z) / np.bincount(labels)
-    eta = fit.shape.design(at) @ np.asarray(fit.coefficients)
-    limit = float(-special.ndtri(0.025 / mean.size))
-    return bool(np.all(np.abs(eta - mean) <= limit * se * (1 + 1e-9) + 1e-12 * np.abs(mean)))
-
-
 def _level_checks(trend_value, z, y, sigma, labels, fit: ShapeFit, centre, scale) -> list[dict]:
     """The map against the pooled interval of each tested level's own tests."""
-    mean, se, count = _pooled(fit, y, sigma, labels)
+    mean, se, count = pooled_levels(fit, y, sigma, labels)
     checks = []
     for k in range(mean.size):
         lo, hi = mean[k] - Z95 * se[k], mean[k] + Z95 * se[k]
@@ -414,16 +392,19 @@ def fit_trend(x, y, sigma, parameter: str, *, robust: bool = True) -> Trend:
     the level means when levels are few (:mod:`mapper.analysis.shapes`). Each test is weighted by
     ``1 / (sigma_i^2 + s^2)``, ``s^2`` the extra scatter of repeats about their level means
     (Paule & Mandel, 1982), so the misfit of a shape cannot inflate it. A shape whose lack-of-fit test
-    against that pure error fails at 5 % (Draper & Smith, 1998) is not used; of the others the
-    simplest within 2 of the best AICc (Hurvich & Tsai, 1989; Burnham & Anderson, 2002) is chosen.
-    Without repeats each shape estimates its own ``s^2`` and AICc alone chooses.
+    against that pure error fails at 5 % (Draper & Smith, 1998), or that leaves a tested level's
+    pooled interval at a family-wise 95 %, is not used; of the others the simplest within 2 of the
+    best AICc (Hurvich & Tsai, 1989; Burnham & Anderson, 2002) is chosen. Without repeats the richest
+    polynomial leaving a residual degree of freedom stands in for the level means
+    (:func:`mapper.analysis.shapes.reference_fit`).
 
     Outliers: each test is compared with the trend fitted to the other tests (externally studentised
     residual with the test's own interval, the others' scatter and the trend's standard error; Cook &
-    Weisberg, 1982) against a two-sided Bonferroni point at 5 % over all tests. Of the tests beyond
-    it, the one whose removal leaves the best-fitting remainder is left out (least trimmed squares
-    criterion, Rousseeuw 1984) and the search repeats, at most for 20 % of the tests. A lone test at
-    an end of the range is flagged but kept: there it cannot be told from curvature.
+    Weisberg, 1982) against a two-sided Bonferroni point at 5 % over all tests. Of repeats beyond it,
+    the one farther from what the other levels predict at its level is left out (its neighbours side
+    with the other repeat); a lone test is left out only inside the range and where the trend is not
+    saturated; the search repeats, at most for 20 % of the tests. A lone test at an end of the range
+    is flagged but kept: there it cannot be told from curvature.
 
     The variation is significant when the Wald test of the chosen shape rejects "no variation" at 5 %.
     When it is not, the upper 95 % bound of a straight trend (in the logarithm) gives the largest

@@ -63,6 +63,10 @@ class Verdict:
         Rows of the schedule table (interpolation nodes; empty when the decision is ``insufficient``).
     schedule_points : tuple of dict
         The schedule as the table tells the user to apply it, at every tested level.
+    depends_on : tuple
+        Single tests the decision hangs on (:class:`mapper.analysis.influence.Dependence`), filled by
+        :func:`mapper.analysis.influence.verdict_influence` via the app; ``depends_on_sentence`` says
+        what was checked.
     """
 
     decision: str
@@ -79,6 +83,8 @@ class Verdict:
     reason_details: tuple = field(default=())
     schedule_points: tuple = field(default=())
     campaign: str | None = None
+    depends_on: tuple = field(default=())
+    depends_on_sentence: str = ""
 
     def to_dict(self) -> dict:
         """The JSON shape of ``mapper verdict --format json`` (non-finite numbers become None)."""
@@ -87,7 +93,8 @@ class Verdict:
                       "variation": self.variation, "controller": self.controller,
                       "points": list(self.points), "schedule": list(self.schedule),
                       "schedule_points": list(self.schedule_points),
-                      "ms_max": self.ms_max, "slowdown_max": self.slowdown_max})
+                      "ms_max": self.ms_max, "slowdown_max": self.slowdown_max,
+                      "depends_on": [entry.to_dict() for entry in self.depends_on]})
 
     def report_dict(self) -> dict:
         """:meth:`to_dict` plus ``responses``: simulated closed-loop curves for the report's chart."""

@@ -19,6 +19,7 @@ from mapper.errors import MapperError
 from mapper.presentation.output import format_object, format_records, plain
 
 app = typer.Typer(add_completion=False, no_args_is_help=True, pretty_exceptions_show_locals=False,
+                  rich_markup_mode=None,  # plain help: loading rich costs more than the rest of start-up
                   pretty_exceptions_enable=False,
                   help="Step-test campaigns to FOPDT models, an operating map and a "
                        "single-controller-or-schedule verdict.")
@@ -157,10 +158,11 @@ def params_command(
     format: Format = FormatOption,
 ) -> None:
     """One row per test: level, direction, gain, time constant, dead time with 95 % intervals."""
+    from mapper.store.queries import param_rows  # plain rows: no pandas to load
     with _store(read_only=True) as store:
-        frame = store.params(campaign=campaign, level_min=level_min, level_max=level_max,
-                             direction=direction.value if direction else None)
-    typer.echo(format_records(frame.to_dict("records"), format.value, kind="params"))
+        rows = param_rows(store, campaign=campaign, level_min=level_min, level_max=level_max,
+                          direction=direction.value if direction else None)
+    typer.echo(format_records(rows, format.value, kind="params"))
 
 
 @app.command("map")
@@ -181,6 +183,8 @@ def map_command(
     lines += [f"operating map of '{data.name}' against {against.value} "
               f"({opmap.level_min:g} to {opmap.level_max:g})", format_records(rows, "table", kind="map"), ""]
     lines += [f"- {row['reason']}" for row in rows]
+    if opmap.influence_sentence:
+        lines += ["", opmap.influence_sentence] + [f"  - {d.sentence}" for d in opmap.depends_on]
     _say(lines)
 
 
@@ -228,6 +232,8 @@ def verdict_command(
         return
     lines = [data.note] if data.note else []
     lines += [f"decision: {result['decision']}"] + [f"  - {r}" for r in result["reasons"]]
+    if verdict.depends_on_sentence:
+        lines += [f"  - {verdict.depends_on_sentence}"] + [f"    {d['sentence']}" for d in result["depends_on"]]
     lines += ["", "single controller at each tested level (Ms; IAE and peak after a load step, ratios to local "
               "SIMC; setpoint overshoot):", format_records(verdict.level_rows(), "table")]
     if verdict.schedule_points and result["decision"] == "schedule":
@@ -265,11 +271,16 @@ def report_command(
     compare_with: str | None = typer.Option(None, "--compare-with", help="an older campaign to compare against"),
     ms_max: float = typer.Option(2.0, "--ms-max"),
     slowdown_max: float = typer.Option(2.0, "--slowdown-max"),
+    prepared_by: str | None = typer.Option(None, "--prepared-by", metavar="NAME",
+                                           help="name for the record block (blank to sign on paper)"),
+    checked_by: str | None = typer.Option(None, "--checked-by", metavar="NAME",
+                                          help="name for the record block (blank to sign on paper)"),
 ) -> None:
     """Write the self-contained HTML report (opens offline)."""
     from mapper.app.jobs import write_campaign_report
     outcome = write_campaign_report(_state["db"], out, campaign=campaign, png_dir=png_dir, ms_max=ms_max,
-                                    slowdown_max=slowdown_max, compare_with=compare_with)
+                                    slowdown_max=slowdown_max, compare_with=compare_with,
+                                    prepared_by=prepared_by, checked_by=checked_by)
     lines = [f"report written to {outcome.path} ({outcome.size_bytes / 1e6:.2f} MB)"]
     if outcome.png_files:
         lines.append(f"{len(outcome.png_files)} PNG charts in {png_dir}")
@@ -280,7 +291,7 @@ def report_command(
 @_guard
 def demo_command(
     out: Path = typer.Option(Path("mapper_demo"), "--out", help="folder for the demo store, report and schedule"),
-    png: bool = typer.Option(True, "--png/--no-png", help="also write the charts as PNG"),
+    png: bool = typer.Option(False, "--png/--no-png", help="also write the charts as PNG (a few seconds more)"),
 ) -> None:
     """Run the whole job on the bundled sample campaign into a fresh folder."""
     from mapper.app.jobs import run_demo

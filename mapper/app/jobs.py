@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import shutil
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any, cast
 
@@ -15,6 +15,7 @@ import numpy as np
 import pandas as pd
 
 from mapper.analysis.compare import compare_campaigns, compare_directions, compare_repeats
+from mapper.analysis.influence import verdict_influence, with_influence
 from mapper.analysis.opmap import OperatingMap, build_map
 from mapper.analysis.verdict import Verdict, decide
 from mapper.errors import MapperError, NotFoundError
@@ -80,9 +81,12 @@ def load_campaign_data(store: Store, campaign: str | None = None) -> CampaignDat
 AGAINST = {"level": "level", "input": "input_level"}
 
 
-def operating_map(store_path, *, campaign: str | None = None,
-                  against: str = "level") -> tuple[CampaignData, OperatingMap]:
+def operating_map(store_path, *, campaign: str | None = None, against: str = "level",
+                  influence: bool = True) -> tuple[CampaignData, OperatingMap]:
     """The operating map of a campaign (trends of gain, time constant, dead time, K/tau).
+
+    With ``influence`` (default) the map carries the single tests its conclusions hang on
+    (:func:`mapper.analysis.influence.with_influence`; ``depends_on`` in its summary rows).
 
     ``against="level"`` maps against the operating level in output units (the brief's
     definition); ``against="input"`` against the input's operating value instead (the mean
@@ -95,13 +99,14 @@ def operating_map(store_path, *, campaign: str | None = None,
         if against == "input":
             levels = store.input_levels()
             data.params["input_level"] = [levels.get(int(i), np.nan) for i in data.params["test_id"]]
-    return data, build_map(data.params, against=AGAINST[against])
+    opmap = build_map(data.params, against=AGAINST[against])
+    return data, (with_influence(opmap, data.params) if influence else opmap)
 
 
 def parameters_at(store_path, level: float, *, campaign: str | None = None,
                   extrapolate: bool = False, against: str = "level") -> dict:
     """Gain, time constant and dead time at ``level`` with their 95 % band."""
-    _, opmap = operating_map(store_path, campaign=campaign, against=against)
+    _, opmap = operating_map(store_path, campaign=campaign, against=against, influence=False)
     return opmap.at(level, extrapolate=extrapolate)
 
 
@@ -113,6 +118,10 @@ def verdict_for(store_path, *, campaign: str | None = None, ms_max: float = 2.0,
     verdict = decide(data.params, ms_max=ms_max, slowdown_max=slowdown_max,
                      closed_loop_time=closed_loop_time, ranges=data.ranges or None, rule=rule,
                      opmap=opmap)
+    depends = verdict_influence(data.params, decision=verdict.decision, opmap=opmap, ms_max=ms_max,
+                                slowdown_max=slowdown_max, closed_loop_time=closed_loop_time,
+                                ranges=data.ranges or None, rule=rule)
+    verdict = replace(verdict, depends_on=depends.entries, depends_on_sentence=depends.sentence)
     if schedule_out is not None:
         verdict.write_schedule_csv(Path(schedule_out), units=data.units)
     return data, verdict
@@ -179,9 +188,11 @@ class ReportOutcome:
 def write_campaign_report(store_path, out: Path, *, campaign: str | None = None,
                           png_dir: Path | None = None, ms_max: float = 2.0,
                           slowdown_max: float = 2.0, compare_with: str | None = None,
-                          schedule_out: Path | None = None) -> ReportOutcome:
+                          schedule_out: Path | None = None, prepared_by: str | None = None,
+                          checked_by: str | None = None) -> ReportOutcome:
     """The self-contained HTML report of a campaign (and PNG charts when ``png_dir``; the
-    schedule CSV too when ``schedule_out``)."""
+    schedule CSV too when ``schedule_out``); ``prepared_by`` and ``checked_by`` fill the
+    record block."""
     from mapper.presentation.report import write_report
     data, verdict = verdict_for(store_path, campaign=campaign, ms_max=ms_max, slowdown_max=slowdown_max,
                                 schedule_out=schedule_out)
@@ -195,11 +206,14 @@ def write_campaign_report(store_path, out: Path, *, campaign: str | None = None,
     if data.note:
         summary["note"] = data.note
     with Store(store_path, read_only=True) as store:
+        described = store.campaign_info(data.name)
+        if described and described[0].get("description"):
+            summary["description"] = str(described[0]["description"])
         # tests stream from the store into the file one at a time
         info = write_report(out, campaign=summary, params=data.params, trend=opmap.trend_frame(),
                             map_summary=opmap.summary(), verdict=verdict.report_dict(),
                             comparisons=found, tests=_iter_tests(store, data.params),
-                            png_dir=png_dir)
+                            png_dir=png_dir, prepared_by=prepared_by, checked_by=checked_by)
     return ReportOutcome(Path(info.path), info.size_bytes, tuple(info.png_files), verdict)
 
 
@@ -228,7 +242,7 @@ class DemoOutcome:
     lines: list[str]
 
 
-def run_demo(out_dir: Path, *, png: bool = True) -> DemoOutcome:
+def run_demo(out_dir: Path, *, png: bool = False) -> DemoOutcome:
     """The whole job on the sample campaign, into a fresh store inside ``out_dir``.
 
     Never touches any other store: the demo store lives in ``out_dir`` and is replaced on
@@ -257,7 +271,7 @@ def run_demo(out_dir: Path, *, png: bool = True) -> DemoOutcome:
         lines += fitted.lines()
         names = [c["name"] for c in store.campaign_info()]
     newest = names[-1]
-    data, opmap = operating_map(db, campaign=newest)
+    data, opmap = operating_map(db, campaign=newest, influence=False)
     lines += ["", f"Operating map of '{newest}':"]
     lines += format_records(opmap.summary(), "table", kind="map").splitlines()
     png_dir = out_dir / "charts" if png else None
@@ -269,6 +283,8 @@ def run_demo(out_dir: Path, *, png: bool = True) -> DemoOutcome:
     assert report.verdict is not None  # write_campaign_report always decides
     result = report.verdict.to_dict()
     lines += ["", f"Verdict: {result['decision']}"] + [f"  - {r}" for r in result["reasons"]]
+    if report.verdict.depends_on_sentence:
+        lines += [f"  - {report.verdict.depends_on_sentence}"]
     if len(names) > 1:
         moved = compare_two(db, names[0], newest)
         lines += ["", f"'{names[0]}' against '{newest}':"] + [f"  - {m['sentence']}" for m in moved[:6]]

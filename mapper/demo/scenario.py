@@ -480,8 +480,12 @@ def _csv_text(t, valve, output, period) -> str:
 
 
 def _toml_text(name, plans, explicit_levels, header) -> str:
+    description = (f"{name}: the steam valve stepped open-loop, in manual, at several hot-water "
+                   "demand flows; levels are nominal outlet temperatures. Simulated by mapper "
+                   "(invented scenario, not plant data).")
     lines = [f"# {line}" for line in header] + [
-        f'name = "{name}"', "", "[columns]", 'time = "t_s"', 'input = "steam_valve_pct"',
+        f'name = "{name}"', f'description = "{description}"', "", "[columns]", 'time = "t_s"',
+        'input = "steam_valve_pct"',
         'output = "outlet_temp_c"', "", "[units]", 'input = "%"', 'output = "degC"', "",
         "[ranges]", "input = [0, 100]", "output = [0, 100]",
     ]

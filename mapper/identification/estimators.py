@@ -35,7 +35,8 @@ __all__ = [
 
 @dataclass(frozen=True)
 class Estimate:
-    """Raw estimate in seconds (``time_constant`` None for the integrating model)."""
+    """Raw estimate in seconds (``time_constant`` None for the integrating model);
+    ``start_state`` is the starting free response (see :mod:`~mapper.identification.nonsteady`)."""
 
     model: str
     gain: float
@@ -45,6 +46,7 @@ class Estimate:
     rss: float = float("nan")
     at_bound: bool = False
     converged: bool = True
+    start_state: float = 0.0
 
 
 # --- point methods ---------------------------------------------------------------------
@@ -123,11 +125,12 @@ def _crossing(shape: StepShape, p: float) -> float:
 def _result(shape: StepShape, step: StepInfo, tau: float, theta: float) -> Estimate:
     gain = (shape.y_after - shape.y_before) / step.size
     ok = np.isfinite(tau) and np.isfinite(theta) and tau > 0
+    wrong_way = np.isfinite(tau) and np.isfinite(theta) and tau <= 0  # kept as a finite dead time
     return Estimate(
         "fopdt",
         gain,
         float(tau) if ok else None,
-        float(max(theta, 0.0)) if ok else float("nan"),
+        float(max(theta, 0.0)) if ok or wrong_way else float("nan"),
         shape.y_before,
         converged=bool(ok),
     )
@@ -370,6 +373,7 @@ def least_squares_fopdt(
     y: np.ndarray,
     step_index: int,
     start: tuple[float, float] | None = None,
+    tau_max: float | None = None,
 ) -> LeastSquaresFit | None:
     """Output-error least-squares FOPDT fit to the measured input.
 
@@ -385,6 +389,8 @@ def least_squares_fopdt(
         First sample after the input started to move.
     start : (tau, theta), optional
         Point-method estimate in seconds, added to the search.
+    tau_max : float, optional
+        Upper bound on the time constant in seconds (default 50 records after the step).
 
     Returns
     -------
@@ -409,6 +415,8 @@ def least_squares_fopdt(
     if d_max < 0:
         return None
     tau_hi = TAU_MAX_POST_RECORDS * max(n_post, 1)
+    if tau_max is not None:
+        tau_hi = max(min(tau_hi, tau_max / period), 2.0 * TAU_MIN_SAMPLES)
     if start is not None and np.isfinite(start[0]) and start[0] > 0:
         taus = []
     else:

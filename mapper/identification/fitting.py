@@ -55,11 +55,14 @@ def _ranges(info: dict) -> tuple[tuple[float, float] | None, tuple[float, float]
 
 def fit_one(job: tuple) -> dict:
     """Identify one test; ``job`` is (test_id, t, u, y, input_range, output_range, method)
-    with, optionally, the test's import flags as an eighth item."""
+    with, optionally, the test's import flags (they feed the grade) and the preceding
+    record ``(t, u)`` of the same file (the model is simulated over it) as eighth and
+    ninth items."""
     test_id, t, u, y, input_range, output_range, method = job[:7]
     import_flags = tuple(job[7]) if len(job) > 7 and job[7] is not None else ()
+    preceding = job[8] if len(job) > 8 else None
     result = identify(t, u, y, method=method, input_range=input_range, output_range=output_range,
-                      import_flags=import_flags)
+                      import_flags=import_flags, preceding=preceding)
     row = result.to_row()
     row["test_id"] = test_id
     return row
@@ -98,8 +101,9 @@ def _jobs(store: Store, test_ids: list[int], method: str) -> Iterator[tuple]:
         samples = store.samples_many(chunk)
         for test_id in chunk:
             t, u, y = samples[test_id]
-            input_range, output_range = _ranges(infos.get(test_id, {}))
-            yield (test_id, t, u, y, input_range, output_range, method)
+            info = infos.get(test_id, {})
+            input_range, output_range = _ranges(info)
+            yield (test_id, t, u, y, input_range, output_range, method, tuple(info.get("import_flags") or ()))
 
 
 def fit_store(store: Store, *, refit: bool = False, method: str = "least_squares",

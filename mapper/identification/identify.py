@@ -14,13 +14,14 @@ import json
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
-from typing import ClassVar
 
 import numpy as np
 
+from mapper.columns import FIT_VALUE_NAMES, column
 from mapper.constants import MIN_AFTER_STEP_SAMPLES, MIN_BASELINE_SAMPLES, MIN_FIT_SAMPLES
 from mapper.errors import DataError, IdentificationError
 from mapper.identification import estimators as est
+from mapper.identification.disturbance import disturbance_flags
 from mapper.identification.flags import flag_text, grade
 from mapper.identification.models import simulate_fopdt, simulate_integrating
 from mapper.identification.quality import (
@@ -31,7 +32,7 @@ from mapper.identification.quality import (
     noise_sd,
     standard_deviation,
 )
-from mapper.identification.disturbance import disturbance_flags
+from mapper.identification.selection import choose_least_squares
 from mapper.identification.uncertainty import disturbance_covariance
 
 __all__ = ["ESTIMATORS", "FitResult", "identify", "find_step", "StepInfo"]
@@ -43,7 +44,6 @@ _POINT_METHODS = {
     "sundaresan": est.sundaresan,
     "area": est.area,
 }
-INTEGRATING_RSS_RATIO = 1.1  # integrating model kept if it fits within 10 % of the FOPDT
 
 
 def _finite(x) -> float | None:
@@ -122,18 +122,11 @@ class FitResult:
     model_evidence: str = ""
     settings: dict = field(default_factory=dict, hash=False, compare=False)
 
-    VALUE_FIELDS: ClassVar[tuple[str, ...]] = (
-        "model", "method", "gain", "gain_lo", "gain_hi", "time_constant",
-        "time_constant_lo", "time_constant_hi", "dead_time", "dead_time_lo",
-        "dead_time_hi", "nrmse", "quality", "input_step", "step_time", "y_before", "y_after",
-        "offset", "input_before", "start_state", "residual_sd", "autocorrelation",
-        "model_evidence",
-    )  # fmt: skip
-
     def to_row(self) -> dict:
-        """The one conversion for the store: value columns, ``flags`` and ``notes`` as
-        lists of str and ``settings`` as a dict."""
-        row = {key: getattr(self, key) for key in self.VALUE_FIELDS}
+        """The one conversion for the store: the value columns of the column registry
+        (:data:`mapper.columns.FIT_VALUE_NAMES`), ``flags`` and ``notes`` as lists of str
+        and ``settings`` as a dict."""
+        row = {key: getattr(self, key) for key in FIT_VALUE_NAMES}
         row["flags"] = list(self.flags)
         row["notes"] = list(self.notes)
         row["settings"] = dict(self.settings)
@@ -144,9 +137,9 @@ class FitResult:
         """The record back from a stored row (missing columns become None; ``settings``
         may be a dict or its JSON text)."""
         values: dict = {}
-        for key in cls.VALUE_FIELDS:
+        for key in FIT_VALUE_NAMES:
             value = row.get(key)
-            if key in ("model", "method", "quality", "model_evidence"):
+            if column(key).kind == "text":
                 values[key] = value if isinstance(value, str) else ("" if key == "model_evidence" else "none")
             else:
                 values[key] = _finite(value) if isinstance(value, (int, float)) else None
@@ -222,6 +215,8 @@ def identify(
     input_range: tuple[float, float] | None = None,
     output_range: tuple[float, float] | None = None,
     import_flags: Sequence[str] = (),
+    preceding: tuple[np.ndarray, np.ndarray] | None = None,
+    start_state: bool = True,
 ) -> FitResult:
     """Identify a FOPDT (or integrating) model from one open-loop step test.
 
@@ -241,6 +236,14 @@ def identify(
         Flags raised when the test was imported (see :mod:`mapper.identification.flags`);
         they feed the grade and their sentences lead the notes, but are not repeated in
         ``FitResult.flags`` (the store keeps them with the test).
+    preceding : (ndarray, ndarray), optional
+        Times and input of the record just before the window. When the input moved
+        there, the model is simulated over it so the first dead time of the window is
+        explained too (the output before the window is not needed).
+    start_state : bool, default True
+        Estimate the starting state when the window starts with the output still
+        moving. False fits every window as if the plant were at rest (the behaviour
+        before this was added; kept for comparison).
 
     Returns
     -------
@@ -256,9 +259,14 @@ def identify(
 
     Notes
     -----
-    The integrating model is chosen when the fitted FOPDT has not reached 63 % of its
-    change by the end of the record and an integrating model fits as well (within
-    10 % residual sum of squares): the output ramps and never settles. Intervals come
+    When the output was still moving from earlier moves as the window began, the
+    least-squares fit estimates that starting state too (a free response decaying with
+    the model's time constant; :mod:`mapper.identification.nonsteady`), chosen by
+    Akaike's criterion or whenever the preceding input moved. The integrating model is
+    chosen only on positive evidence: the first-order fit shows no settling within the
+    record and its extra parameter does not lower Akaike's criterion on the same
+    samples (:mod:`mapper.identification.selection`); ``model_evidence`` says which
+    evidence decided. Intervals come
     from the Jacobian at the optimum, widened for AR(1) residuals
     (:func:`mapper.identification.uncertainty.disturbance_covariance`: white noise plus a
     slow wander, fitted by restricted likelihood); the time-constant interval is
@@ -304,17 +312,47 @@ def identify(
         return _rejected(method, flags + ["no_response"], settings, step, y, import_flags)
     try:
         with np.errstate(all="ignore"):
+            history = _history(preceding, step, t, u) if start_state else np.empty(0)
             return _identify_step(
-                t, u, y, step, method, flags, settings, input_range, output_range, import_flags
+                t, u, y, step, method, flags, settings, input_range, output_range, import_flags, history,
+                start_state,
             )
     except (ValueError, ArithmeticError, np.linalg.LinAlgError):
         # numbers beyond what the arithmetic can carry: a rejected fit with a reason, not a crash
         return _rejected(method, flags + ["numerical_failure"], settings, step, y, import_flags)
 
 
-def _identify_step(t, u, y, step, method, flags, settings, input_range, output_range, import_flags):
+def _history(preceding, step: StepInfo, t: np.ndarray, u: np.ndarray) -> np.ndarray:
+    """The preceding input worth simulating: enough to cover a dead time as long as the
+    baseline, and only when it moved (a flat preceding input adds nothing)."""
+    if preceding is None:
+        return np.empty(0)
+    t_before, u_before = (np.asarray(a, dtype=float) for a in preceding)
+    if t_before.size == 0 and u_before.size == 0:
+        return np.empty(0)
+    if t_before.ndim != 1 or t_before.shape != u_before.shape:
+        raise DataError(
+            f"the preceding record needs times and input of one length, got shapes "
+            f"{t_before.shape}, {u_before.shape}",
+            hint="pass (t, u) of the samples just before the window",
+        )
+    if not np.all(np.isfinite(u_before)) or t_before[-1] >= t[0]:
+        return np.empty(0)
+    tail = u_before[-max(step.index, MIN_BASELINE_SAMPLES * 3) :]
+    # the input moved in the tail, or between the tail and the window's first sample
+    seen = np.append(tail, u[0])
+    scale = max(float(np.max(np.abs(seen))), 1e-300)
+    if float(np.ptp(seen)) <= max(6.0 * noise_sd(seen), 1e-9 * scale):
+        return np.empty(0)
+    return tail
+
+
+def _identify_step(
+    t, u, y, step, method, flags, settings, input_range, output_range, import_flags, history,
+    start_state=True,
+):
     period = settings["period"]
-    v = u - step.u_before
+    v_all = np.concatenate((history, u)) - step.u_before
     notes: list[str] = []
     shape = est.step_shape(t, y, step, noise_sd(y))
     start = est.smith(shape, step)
@@ -324,10 +362,15 @@ def _identify_step(t, u, y, step, method, flags, settings, input_range, output_r
     disturbance = None
     phi = None
     quantile = None
+    evidence = ""
+    from_state = False
     if method == "least_squares" or _still_ramping(shape):
-        fit = _least_squares(period, v, y, step, start)
-        if fit is None:
+        choice = choose_least_squares(t, v_all, y, history.size, step, start, period, start_state)
+        if choice is None:
             return _rejected(method, flags + ["fit_failed"], settings, step, y, import_flags)
+        fit, from_state, evidence = choice.fit, choice.from_state, choice.evidence
+        if choice.drift:
+            flags.append("drift_before_step")
         if method != "least_squares" and fit.estimate.model == "fopdt":
             fit = None  # the point method stands; the record merely did not settle
         elif method != "least_squares":
@@ -343,20 +386,23 @@ def _identify_step(t, u, y, step, method, flags, settings, input_range, output_r
     else:
         e = _POINT_METHODS[method](shape, step)
         if e.time_constant is None:
-            return _rejected(method, flags + ["fit_failed"], settings, step, y, import_flags)
+            # a finite dead time with no time constant: the method read tau <= 0
+            reason = "time_constant_not_positive" if np.isfinite(e.dead_time) else "fit_failed"
+            return _rejected(method, flags + [reason], settings, step, y, import_flags)
         notes.append("Point methods give no interval; use least_squares for 95 % intervals.")
+        evidence = f"first order: the {method} method reads a first-order model off the response"
     settings["method"] = used
-    if e.model == "integrating":
+    if fit is not None:
+        fitted = y - fit.residuals
+    elif e.model == "integrating":  # pragma: no cover - point methods give first order only
         fitted = simulate_integrating(u, period, e.gain, e.dead_time, u0=step.u_before, y0=e.offset)
-        response = fitted[-1] - e.offset
-        y_after = float(fitted[-1])
     else:
-        if fit is not None:
-            fitted = y - fit.residuals
-        else:
-            fitted = simulate_fopdt(
-                u, period, e.gain, e.time_constant, e.dead_time, u0=step.u_before, y0=e.offset
-            )
+        fitted = simulate_fopdt(u, period, e.gain, e.time_constant, e.dead_time, u0=step.u_before, y0=e.offset)
+    if e.model == "integrating":
+        # the change the input caused over the record (a starting ramp is not part of it)
+        response = float(simulate_integrating(u, period, e.gain, e.dead_time, u0=step.u_before)[-1])
+        y_after = e.offset + response
+    else:
         response = e.gain * step.size
         y_after = e.offset + response
     residuals = y - fitted
@@ -369,6 +415,7 @@ def _identify_step(t, u, y, step, method, flags, settings, input_range, output_r
         model=e.model, time_constant=e.time_constant, dead_time=e.dead_time,
         response=response, residuals=residuals,
         input_range=input_range, output_range=output_range, period=period,
+        start_state=from_state,
     )  # fmt: skip
     band = 4.0 * sd
     gain_lo, gain_hi = intervals["gain"]
@@ -378,6 +425,8 @@ def _identify_step(t, u, y, step, method, flags, settings, input_range, output_r
         flags.append("dead_time_beyond_record")
     if e.at_bound and e.model == "fopdt":
         flags.append("time_constant_at_bound")
+    if from_state:
+        flags.append("start_state_estimated")
     flags = list(dict.fromkeys(flags))
     if disturbance is not None and fit is not None:  # unexplained load changes and wander
         first = step.index + int(e.dead_time / period) + 2 if np.isfinite(e.dead_time) else step.index
@@ -388,6 +437,8 @@ def _identify_step(t, u, y, step, method, flags, settings, input_range, output_r
         flags += [f for f in found if f not in flags]
         notes += said
     notes = [flag_text(f) for f in (*import_flags, *flags)] + notes
+    if evidence:
+        notes.append("Model choice: " + evidence + ".")
     return FitResult(
         model=e.model, method=used,
         gain=_finite(e.gain), gain_lo=gain_lo, gain_hi=gain_hi,
@@ -396,11 +447,15 @@ def _identify_step(t, u, y, step, method, flags, settings, input_range, output_r
         time_constant_hi=intervals["time_constant"][1],
         dead_time=_finite(e.dead_time),
         dead_time_lo=intervals["dead_time"][0], dead_time_hi=intervals["dead_time"][1],
-        nrmse=_finite(nrmse), quality=grade([*import_flags, *flags]), flags=tuple(flags), notes=tuple(notes),
+        nrmse=_finite(nrmse),
+        quality=grade([*import_flags, *flags], start_state=start_state and fit is not None),
+        flags=tuple(flags), notes=tuple(notes),
         input_step=_finite(step.size), step_time=_finite(step.time),
         y_before=_finite(e.offset), y_after=_finite(y_after), settings=settings,
         offset=_finite(e.offset), input_before=_finite(step.u_before),
+        start_state=_finite(e.start_state) if from_state else None,
         residual_sd=_finite(sd), autocorrelation=_finite(phi) if phi is not None else None,
+        model_evidence=evidence,
     )  # fmt: skip
 
 
@@ -411,23 +466,6 @@ def _still_ramping(shape) -> bool:
         return False
     tail = shape.raw[-max(3, n // 5) :]
     return abs(tail[-1] - tail[0]) > 0.2 or abs(np.mean(tail[-3:]) - np.mean(tail[:3])) > 0.2
-
-
-def _least_squares(period, v, y, step: StepInfo, start: est.Estimate):
-    """FOPDT by least squares; the integrating model when the output never settles."""
-    # a point-method start assumes one clean move; otherwise search a grid
-    single = step.n_moves == 1 and start.time_constant is not None and start.time_constant > 0
-    guess = (start.time_constant, start.dead_time) if single and start.time_constant is not None else None
-    fopdt = est.least_squares_fopdt(period, v, y, step.index, guess)
-    if fopdt is None:
-        return None
-    e = fopdt.estimate
-    record_after = period * (y.size - step.index)
-    if e.at_bound or e.time_constant > record_after - e.dead_time:
-        ramp = est.least_squares_integrating(period, v, y, step.index)
-        if ramp is not None and ramp.estimate.rss <= INTEGRATING_RSS_RATIO * e.rss + 1e-300:
-            return ramp
-    return fopdt
 
 
 def _intervals(e: est.Estimate, cov, z) -> dict[str, tuple[float | None, float | None]]:

@@ -3,8 +3,8 @@
 This module owns the first-order-plus-dead-time (FOPDT) and integrating-plus-dead-time
 models: their exact zero-order-hold (ZOH) discretisation with a fractional dead time,
 their response to any sampled input, their sensitivities to the parameters and the
-analytic step response. It uses numpy and scipy only and knows nothing of files,
-stores or quality checks.
+analytic step response. It uses numpy only (its own first-order recursive filter, so the fit path never
+imports ``scipy.signal``) and knows nothing of files, stores or quality checks.
 
 Conventions (see ``docs/interfaces.md``): time in seconds, arrays 1-D float64 on a
 uniform grid of period ``period``, the input held constant between samples, and the
@@ -17,9 +17,9 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy.signal import lfilter
 
 __all__ = [
+    "first_order_filter",
     "zoh_coefficients",
     "split_dead_time",
     "simulate_fopdt",
@@ -35,6 +35,88 @@ __all__ = [
 def _check_positive(name: str, value: float) -> None:
     if not (np.isfinite(value) and value > 0):
         raise ValueError(f"{name} must be a positive finite number, got {value!r}")
+
+
+# exp(300) ~ 1e130: block length for the scaled running sum, far from overflow
+_BLOCK_LOG_SCALE = 300.0
+# a pole whose impulse response falls under 1e-17 within this many terms is run as a short
+# moving sum (a < 0.087); longer responses use the scaled running sum
+_FIR_TERMS = 16
+
+
+def first_order_filter(x: np.ndarray, pole: float) -> np.ndarray:
+    """Run ``y[k] = pole * y[k-1] + x[k]`` from rest (``y[-1] = 0``) along the last axis.
+
+    Parameters
+    ----------
+    x : ndarray
+        Input, 1-D or 2-D (each row filtered on its own).
+    pole : float
+        ``a`` in ``[0, 1]``: ``exp(-T/tau)`` for a zero-order-hold first-order lag, or an
+        AR(1) coefficient; ``1`` gives the running sum (an integrator).
+
+    Returns
+    -------
+    ndarray
+        Same shape as ``x``, float64. Equals ``scipy.signal.lfilter([1], [1, -pole], x)``
+        to rounding (checked in the tests).
+
+    Notes
+    -----
+    The recursion is solved in closed form, ``y[k] = a^k sum_{j<=k} a^-j x[j]`` (the
+    discrete convolution with the geometric impulse response), evaluated with numpy's
+    running sum in blocks short enough that ``a^-j`` stays below ``exp(300)`` and the
+    state carried between blocks; rounding stays of the order of the recursion's own
+    (``eps * max|x| / (1 - a)``). For a pole so small that the impulse response falls
+    under ``1e-17`` within 16 terms it is cut there (a short moving sum). No Python loop
+    runs per sample.
+    """
+    x = np.asarray(x, dtype=float)
+    a = float(pole)
+    if not 0.0 <= a <= 1.0:
+        raise ValueError(f"pole must be in [0, 1], got {pole!r}")
+    n = x.shape[-1]
+    if a == 1.0:
+        return np.cumsum(x, axis=-1)
+    if a == 0.0 or n == 0:
+        return x.copy()
+    rate = -math.log(a)  # a = exp(-rate)
+    terms = int(math.ceil(39.2 / rate))  # a^terms < 1e-17: the rest is below rounding
+    if terms <= _FIR_TERMS:
+        y = x.copy()
+        weight = 1.0
+        for m in range(1, min(terms, n)):
+            weight *= a
+            y[..., m:] += weight * x[..., :-m]
+        return y
+    block = min(n, max(1, int(_BLOCK_LOG_SCALE / rate)))
+    k = np.arange(block, dtype=float)
+    grow = np.exp(k * rate)  # a^-k
+    decay = np.exp(-k * rate)  # a^k
+    if block == n:
+        return decay * np.cumsum(x * grow, axis=-1)
+    y = np.empty_like(x)
+    carry = None
+    for start in range(0, n, block):
+        stop = min(start + block, n)
+        m = stop - start
+        part = decay[:m] * np.cumsum(x[..., start:stop] * grow[:m], axis=-1)
+        if carry is not None:
+            part += carry[..., None] * (a * decay[:m])
+        y[..., start:stop] = part
+        carry = part[..., -1]
+    return y
+
+
+def _shifted_pair(w: np.ndarray, d: int, c1: float, c2: float) -> np.ndarray:
+    """``c1 w[k-d-1] + c2 w[k-d-2]`` with zeros before the record (the plant at rest)."""
+    n = w.size
+    out = np.zeros(n)
+    if d + 1 < n:
+        out[d + 1 :] = c1 * w[: n - d - 1]
+    if d + 2 < n:
+        out[d + 2 :] += c2 * w[: n - d - 2]
+    return out
 
 
 def split_dead_time(dead_time: float, period: float) -> tuple[int, float]:
@@ -115,19 +197,12 @@ def _deviation(u: np.ndarray, u0: float | None) -> np.ndarray:
     return u - (u[0] if u0 is None else float(u0))
 
 
-def _delayed_numerator(d: int, c1: float, c2: float) -> np.ndarray:
-    b = np.zeros(d + 3)
-    b[d + 1] = c1
-    b[d + 2] = c2
-    return b
-
-
 def fopdt_unit_response(
     v: np.ndarray, period: float, time_constant: float, dead_time: float
 ) -> np.ndarray:
     """Unit-gain FOPDT response to an input in deviation form ``v = u - u0``."""
     a, b1, b2, d = zoh_coefficients(1.0, time_constant, dead_time, period)
-    return lfilter(_delayed_numerator(d, b1, b2), [1.0, -a], v)
+    return _shifted_pair(first_order_filter(v, a), d, b1, b2)
 
 
 def simulate_fopdt(
@@ -163,7 +238,7 @@ def simulate_fopdt(
     Notes
     -----
     Uses the exact ZOH difference equation of :func:`zoh_coefficients`, evaluated with
-    ``scipy.signal.lfilter``.
+    :func:`first_order_filter`.
     """
     v = _deviation(u, u0)
     return y0 + gain * fopdt_unit_response(v, period, time_constant, dead_time)
@@ -250,7 +325,7 @@ def unit_response_rows(
         f = 0.0
     a = math.exp(-1.0 / tau)
     e = math.exp(-(1.0 - f) / tau)
-    z = lfilter(_ONE, np.array([1.0, -2.0 * a, a * a]), v)
+    z = first_order_filter(first_order_filter(v, a), a)
     b1, b2 = 1.0 - e, e - a
     da = a / (tau * tau)
     db1 = -e * (1.0 - f) / (tau * tau)
@@ -277,7 +352,6 @@ def unit_response_rows(
     return z
 
 
-_ONE = np.array([1.0])
 _TWO_ZEROS = np.zeros(2)
 
 
@@ -292,7 +366,7 @@ def _delay(x: np.ndarray, shift: int) -> np.ndarray:
 def integrating_unit_response(v: np.ndarray, period: float, dead_time: float) -> np.ndarray:
     """Unit-gain integrating response ``integral of v(t - theta) dt`` with ZOH input."""
     d, f = split_dead_time(dead_time, period)
-    return lfilter(_delayed_numerator(d, period - f, f), [1.0, -1.0], v)
+    return _shifted_pair(np.cumsum(v), d, period - f, f)
 
 
 def simulate_integrating(

@@ -29,10 +29,9 @@ from mapper.constants import (
     CLIP_SPAN_FRACTION,
     DRIFT_FRACTION,
     MIN_BASELINE_SAMPLES,
-    MIN_RESPONSE_NOISE_BANDS,
+    MIN_RESPONSE_SIGNAL_TO_NOISE,
     MIN_SAMPLES_PER_TIME_CONSTANT,
     MISFIT_FRACTION,
-    NOISE_BAND_SDS,
     QUANTUM_LEVELS,
     SETTLE_TIME_CONSTANTS,
 )
@@ -116,6 +115,7 @@ def assess(
     input_range=None,
     output_range=None,
     period: float | None = None,
+    start_state: bool = False,
 ) -> list[str]:
     """Checks of a step test against the rules of thumb of the trade.
 
@@ -138,6 +138,9 @@ def assess(
         Instrument ranges for the clipping checks.
     period : float, optional
         Sample period (s); default the median spacing of ``t``.
+    start_state : bool, default False
+        The fit estimated the starting state: drift before the step is then judged on
+        the residuals (what the starting free response does not explain).
 
     Returns
     -------
@@ -148,7 +151,7 @@ def assess(
     -----
     All limits are common practice, not published rules: settled means the record
     runs past dead time + 4 time constants after the step; the response should be at
-    least 5 noise bands (a band is 4 sd of the residual); at least 10 samples per
+    least 5 residual sd (signal-to-noise ratio 5); at least 10 samples per
     time constant; pre-step drift carried over the test under 10 % of the response.
     """
     flags: list[str] = []
@@ -156,12 +159,12 @@ def assess(
         period = median(np.diff(t))
     t_end = float(t[-1])
     sigma = standard_deviation(residuals) if residuals is not None and residuals.size else noise_sd(y)
-    band = NOISE_BAND_SDS * sigma
     i0 = step.index
     # drift before the step: slope of a straight line through the baseline
     if i0 >= 2 * MIN_BASELINE_SAMPLES and abs(response) > 0:
+        base = residuals if start_state and residuals is not None else y
         tb = t[:i0] - t[:i0].mean()
-        yb = y[:i0] - y[:i0].mean()
+        yb = base[:i0] - base[:i0].mean()
         stt = float(tb @ tb)
         slope = float(tb @ yb) / stt
         resid = yb - slope * tb
@@ -176,7 +179,7 @@ def assess(
         flags.append("input_clipped")
     if _at_limit(y, output_range) or _flat_topped(y):
         flags.append("output_clipped")
-    if band > 0 and abs(response) < MIN_RESPONSE_NOISE_BANDS * band:
+    if sigma > 0 and abs(response) < MIN_RESPONSE_SIGNAL_TO_NOISE * sigma:
         flags.append("small_response")
     if step.n_moves > 1:
         flags.append("multiple_input_moves")

@@ -13,10 +13,9 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy.linalg import lapack
-from scipy.signal import lfilter
 
 from mapper.constants import Z95
-from mapper.identification.models import fopdt_sensitivities
+from mapper.identification.models import first_order_filter, fopdt_sensitivities
 
 __all__ = [
     "DisturbanceCovariance",
@@ -74,11 +73,10 @@ def _ar1_times(x: np.ndarray, phi: float, axis: int = 0) -> np.ndarray:
     """``R @ x`` for the AR(1) correlation matrix ``R[i, j] = phi**|i-j|`` along ``axis``."""
     if phi == 0.0:
         return x
-    b, a = np.array([1.0]), np.array([1.0, -phi])
-    flip = np.flip(x, axis=axis)
-    fwd = lfilter(b, a, x, axis=axis)
-    bwd = np.flip(lfilter(b, a, flip, axis=axis), axis=axis)
-    return fwd + bwd - x
+    x = np.moveaxis(x, axis, -1)
+    fwd = first_order_filter(x, phi)
+    bwd = first_order_filter(x[..., ::-1], phi)[..., ::-1]
+    return np.moveaxis(fwd + bwd - x, -1, axis)
 
 
 def _pseudo_inverse(a: np.ndarray) -> np.ndarray:

@@ -13,7 +13,7 @@ import difflib
 import math
 import tomllib
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 
 from mapper.errors import CampaignFileError
@@ -263,7 +263,7 @@ def load_campaign(folder: str | Path) -> Campaign:
 def _time_format(value, source: Path) -> str:
     """A strftime pattern for text timestamps, checked by formatting a known instant."""
     pattern = _expect(value, (str,), "columns.time_format", source)
-    example = datetime(2026, 3, 4, 10, 15, 30, tzinfo=timezone.utc)
+    example = datetime(2026, 3, 4, 10, 15, 30, tzinfo=UTC)
     try:
         written = example.strftime(pattern)
         datetime.strptime(written, pattern)

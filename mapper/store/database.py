@@ -15,21 +15,23 @@ import time
 from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import duckdb
 import numpy as np
-import pandas as pd
-import pyarrow as pa
+
+if TYPE_CHECKING:  # pandas and pyarrow load on first use: `mapper params` starts without them
+    import pandas as pd
 
 from mapper import __version__
 from mapper.columns import FIT_LIST_COLUMNS, FIT_VALUE_COLUMNS
 from mapper.errors import NotAStoreError, NotFoundError, StoreError, StoreInUseError
 from mapper.store.schema import (
     ADDED_COLUMNS,
-    ARROW_TYPES,
     SCHEMA,
     SQL_TYPES,
     TEST_COLUMN_TYPES,
+    arrow_types,
     quoted,
 )
 from mapper.store.segment import TestWindow
@@ -109,7 +111,7 @@ class Store:
                  create: bool = True, wait: float | None = None) -> None:
         self.path = Path(path) if path is not None else default_store_path()
         wait = float(os.environ.get(LOCK_WAIT_ENV, "10")) if wait is None else wait
-        exists = self.path.exists()
+        exists, probe = self.path.exists(), None
         if exists and self.path.is_dir():
             raise NotAStoreError(f"{self.path}: is a folder, not a store",
                                  hint="give --db a file name such as campaign.duckdb")
@@ -125,10 +127,10 @@ class Store:
                 f"{self.path}: not a mapper store (not a DuckDB file); the file was left untouched",
                 hint="give --db a new file name or an existing mapper store")
         else:
-            self._check_existing(wait)
+            probe = self._check_existing(wait, keep_open=read_only)
         if not exists:
             self._create_atomically()
-        self.connection = _connect(self.path, read_only, wait)
+        self.connection = probe or _connect(self.path, read_only, wait)
         if exists and not read_only:
             self._add_registered_columns()
 
@@ -141,8 +143,8 @@ class Store:
                 statement = f"ALTER TABLE {table} ADD COLUMN {quoted(name)} {SQL_TYPES[kind]}"
                 self.connection.execute(statement)
 
-    def _check_existing(self, wait: float) -> None:
-        # Inspect read-only first so that a foreign DuckDB database is never written to.
+    def _check_existing(self, wait: float, keep_open: bool) -> duckdb.DuckDBPyConnection | None:
+        # Inspect read-only first (a foreign database is never written to); a reader keeps it open.
         probe = _connect(self.path, True, wait)
         try:
             tables = {r[0] for r in probe.execute(
@@ -152,11 +154,15 @@ class Store:
                     f"{self.path}: a DuckDB database but not a mapper store; it was left untouched",
                     hint="give --db a new file name for the mapper store")
             row = probe.execute("SELECT value FROM mapper_meta WHERE key = 'schema_version'").fetchone()
-        finally:
+            if row is None or int(row[0]) > SCHEMA_VERSION:
+                raise StoreError(f"{self.path}: store schema {row and row[0]} is newer than this "
+                                 f"mapper understands ({SCHEMA_VERSION})", hint="upgrade mapper")
+        except BaseException:
             probe.close()
-        if row is None or int(row[0]) > SCHEMA_VERSION:
-            raise StoreError(f"{self.path}: store schema {row and row[0]} is newer than this "
-                             f"mapper understands ({SCHEMA_VERSION})", hint="upgrade mapper")
+            raise
+        if not keep_open:
+            probe.close()
+        return probe if keep_open else None
 
     def _create_atomically(self) -> None:
         """Build the new store under a temporary name and rename it into place.
@@ -241,6 +247,7 @@ class Store:
         """
         if not windows:
             return []
+        import pyarrow as pa
         with self.transaction() as con:
             campaign_id = self.ensure_campaign(con, campaign)
             ids = [int(r[0]) for r in con.execute(
@@ -249,7 +256,7 @@ class Store:
             tests = pa.table({
                 "test_id": pa.array(ids, pa.int32()),
                 "campaign_id": pa.array([campaign_id] * len(windows), pa.int32()),
-                **{name: pa.array([r[name] for r in rows], ARROW_TYPES[kind])
+                **{name: pa.array([r[name] for r in rows], arrow_types()[kind])
                    for name, kind in TEST_COLUMN_TYPES.items()},
             })
             samples = pa.table({
@@ -302,6 +309,7 @@ class Store:
         """Store fit rows (``FitResult.to_row()`` plus ``test_id``) in one transaction."""
         if not rows:
             return
+        import pyarrow as pa
         columns: dict[str, pa.Array] = {"test_id": pa.array([int(r["test_id"]) for r in rows], pa.int32())}
         for spec in (*FIT_VALUE_COLUMNS, *FIT_LIST_COLUMNS):
             values = [r.get(spec.name) for r in rows]
@@ -309,7 +317,7 @@ class Store:
                 values = [None if v is None or not np.isfinite(float(v)) else float(v) for v in values]
             elif spec.kind == "text_list":
                 values = [list(v or []) for v in values]
-            columns[spec.name] = pa.array(values, ARROW_TYPES[spec.kind])
+            columns[spec.name] = pa.array(values, arrow_types()[spec.kind])
         columns["settings"] = pa.array([json.dumps(r.get("settings") or {}, default=str) for r in rows])
         columns["tool_version"] = pa.array([__version__] * len(rows))
         table = pa.table(columns)
@@ -323,10 +331,11 @@ class Store:
                 con.unregister("incoming_fits")
 
     def fit_inputs(self, test_ids: Sequence[int]) -> dict[int, dict]:
-        """Instrument ranges and where the window's own move starts, per test, in one query.
+        """Instrument ranges, import flags and where the window's own move starts, per test,
+        in one query.
 
         Keys: ``input_range_low``, ``input_range_high``, ``output_range_low``,
-        ``output_range_high``, ``move_start_index`` and ``move_start_time`` (s from the
+        ``output_range_high``, ``import_flags``, ``move_start_index`` and ``move_start_time`` (s from the
         window start; both None for explicit windows and stores imported before they
         were kept).
         """
@@ -334,10 +343,10 @@ class Store:
                       else "NULL, NULL")  # a read-only store from an earlier mapper
         rows = self.connection.execute(
             "SELECT t.test_id, c.input_range_low, c.input_range_high, c.output_range_low, "
-            "c.output_range_high, " + column_sql + " FROM tests t JOIN campaigns c USING (campaign_id) "
+            "c.output_range_high, t.import_flags, " + column_sql + " FROM tests t JOIN campaigns c USING (campaign_id) "
             "WHERE t.test_id IN (SELECT unnest(?::INTEGER[]))", [list(map(int, test_ids))]).fetchall()
         keys = ("input_range_low", "input_range_high", "output_range_low", "output_range_high",
-                "move_start_index", "move_start_time")
+                "import_flags", "move_start_index", "move_start_time")
         return {int(r[0]): dict(zip(keys, r[1:])) for r in rows}
 
     def _has_column(self, table: str, column: str) -> bool:
@@ -403,15 +412,9 @@ class Store:
                level_max: float | None = None, direction: str | None = None,
                include_rejected: bool = True) -> pd.DataFrame:
         """Rows of ``test_params`` with optional filters, ordered by campaign, level, id."""
-        filters = (("campaign = ?", campaign), ("level >= ?", level_min),
-                   ("level <= ?", level_max), ("direction = ?", direction))
-        clauses = [clause for clause, value in filters if value is not None]
-        args = [value for _, value in filters if value is not None]
-        if not include_rejected:
-            clauses.append("coalesce(quality, '') <> 'rejected'")
-        where = (" WHERE " + " AND ".join(clauses)) if clauses else ""
-        frame = self.connection.execute(
-            "SELECT * FROM test_params" + where + " ORDER BY campaign, level, test_id", args).df()
+        from mapper.store.queries import params_query
+        sql, bound = params_query(campaign, level_min, level_max, direction, include_rejected)
+        frame = self.connection.execute(sql, bound).df()
         frame["flags"] = [list(f) if f is not None else [] for f in frame["flags"]]
         return frame
 

@@ -71,7 +71,8 @@ def _check_finite(path: Path, column: str, values: np.ndarray, lines: np.ndarray
 
 
 def _parse_time(path: Path, column: str, raw: np.ndarray, kind: str, seconds_per_unit: float,
-                lines: np.ndarray, decimal_comma: bool = False, time_format: str | None = None) -> tuple[np.ndarray, str | None, str | None]:
+                lines: np.ndarray, decimal_comma: bool = False,
+                time_format: str | None = None) -> tuple[np.ndarray, str | None, str | None]:
     """Seconds from the first sample, the first timestamp as text, and its zone."""
     if kind.startswith("TIMESTAMP") or np.issubdtype(np.asarray(raw).dtype, np.datetime64):
         stamps = pd.to_datetime(pd.Series(raw), utc=("TIME ZONE" in kind))

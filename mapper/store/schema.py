@@ -9,8 +9,6 @@ writing. The tables are documented in ``docs/store.md``.
 
 from __future__ import annotations
 
-import pyarrow as pa
-
 from mapper.columns import (
     FIT_LIST_COLUMNS,
     FIT_VALUE_COLUMNS,
@@ -18,12 +16,19 @@ from mapper.columns import (
     TEST_PARAMS_NAMES,
 )
 
-__all__ = ["SCHEMA", "ADDED_COLUMNS", "SQL_TYPES", "ARROW_TYPES", "TEST_COLUMN_TYPES", "quoted"]
+__all__ = ["SCHEMA", "ADDED_COLUMNS", "SQL_TYPES", "arrow_types", "TEST_COLUMN_TYPES", "quoted"]
 
 # DuckDB type of each kind of registered column (mapper.columns)
 SQL_TYPES = {"number": "DOUBLE", "integer": "INTEGER", "text": "VARCHAR", "text_list": "VARCHAR[]"}
-ARROW_TYPES = {"number": pa.float64(), "integer": pa.int32(), "text": pa.string(),
-                "text_list": pa.list_(pa.string())}
+
+
+def arrow_types() -> dict:
+    """Arrow type of each kind of registered column (pyarrow loads on the first write)."""
+    import pyarrow as pa
+    return {"number": pa.float64(), "integer": pa.int32(), "text": pa.string(),
+            "text_list": pa.list_(pa.string())}
+
+
 
 # Columns of the public view that are not plain fit values: how each is formed.
 _VIEW_EXPRESSIONS = {

@@ -158,7 +158,7 @@ def unpack_test(test: Any) -> tuple[dict, np.ndarray, np.ndarray, np.ndarray, An
 def map_points(params: pd.DataFrame | None) -> list[dict]:
     """Long rows ``test_id, level, direction, quality, parameter, value, lo, hi``.
 
-    Rejected tests and tests without a level are left out; gain over time constant gets
+    Rejected and excluded tests and tests without a level are left out; gain over time constant gets
     an interval from the ends of the two intervals (conservative: it ignores the
     correlation of gain and time constant).
     """
@@ -166,7 +166,7 @@ def map_points(params: pd.DataFrame | None) -> list[dict]:
     if params is None or len(params) == 0:
         return rows
     for rec in params.to_dict("records"):
-        if rec.get("quality") == "rejected":
+        if rec.get("quality") == "rejected" or rec.get("excluded") is True:
             continue
         base = {
             "test_id": text(rec.get("test_id")),
@@ -367,11 +367,31 @@ def margins_rows(verdict: Mapping[str, Any]) -> list[dict]:
     return rows
 
 
+def schedule_is_interpolated(verdict: Mapping[str, Any]) -> bool:
+    """True when the schedule rows are interpolation nodes (rows carry ``band``)."""
+    return any("band" in s for s in verdict.get("schedule") or [])
+
+
 def schedule_rows(verdict: Mapping[str, Any]) -> list[dict]:
-    """Step-chart vertices (level, kc) of the schedule: each band held from its start."""
+    """Chart vertices (level, kc) of the schedule.
+
+    Rows that are interpolation nodes (with ``band``) give the schedule as applied: held from the
+    start of the range to the first node, linear between nodes, held after the last. Otherwise each
+    band is held from its start (a step chart).
+    """
     sched = [s for s in verdict.get("schedule") or [] if number(s.get("kc")) is not None]
     sched.sort(key=lambda s: number(s.get("level")) or 0.0)
     rows: list[dict] = []
+    if sched and schedule_is_interpolated(verdict):
+        first, last = sched[0], sched[-1]
+        start, end = number(first.get("level_from")), number(last.get("level_to"))
+        if start is not None:
+            rows.append({"level": start, "kc": number(first["kc"]), "tested": None})
+        rows += [{"level": number(s.get("level")), "kc": number(s["kc"]), "tested": number(s.get("level"))}
+                 for s in sched]
+        if end is not None:
+            rows.append({"level": end, "kc": number(last["kc"]), "tested": None})
+        return rows
     for k, s in enumerate(sched):
         level = number(s.get("level"))
         start = number(s.get("level_from"))

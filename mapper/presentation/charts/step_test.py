@@ -124,7 +124,7 @@ def step_test_spec(row: Mapping[str, Any], t: Sequence[float], u: Sequence[float
                    y: Sequence[float], fitted: Sequence[float] | None = None,
                    step_time: float | None = None, *, units: Mapping[str, str] | None = None,
                    points: int = POINTS_PER_TEST, width: int = 600,
-                   title: str | None = None) -> dict:
+                   title: str | None = None, subtitle: str | None = None) -> dict:
     """The Vega-Lite specification of :func:`step_test_chart`, made quickly.
 
     Same arguments and the same specification as ``step_test_chart(...).to_dict()``
@@ -133,8 +133,9 @@ def step_test_spec(row: Mapping[str, Any], t: Sequence[float], u: Sequence[float
 
     Parameters
     ----------
-    title : str, optional
-        Replaces the chart's title (by default the test name, level and direction).
+    title, subtitle : str, optional
+        Replace the chart's title (by default the test name, level and direction) and
+        subtitle (by default quality and flags).
 
     Returns
     -------
@@ -147,7 +148,7 @@ def step_test_spec(row: Mapping[str, Any], t: Sequence[float], u: Sequence[float
     template, rows_name, marks_name, step_name = _step_template(key, int(width))
     spec = copy.deepcopy(template)
     spec["title"]["text"] = parts.title if title is None else title
-    spec["title"]["subtitle"] = parts.subtitle
+    spec["title"]["subtitle"] = parts.subtitle if subtitle is None else subtitle
     datasets = {rows_name: parts.rows}
     if marks_name is not None:
         datasets[marks_name] = [parts.marks]

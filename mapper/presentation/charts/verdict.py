@@ -7,7 +7,13 @@ from typing import Any, cast
 
 import altair as alt
 
-from mapper.presentation.charts.data import margins_rows, number, schedule_rows, units_of
+from mapper.presentation.charts.data import (
+    margins_rows,
+    number,
+    schedule_is_interpolated,
+    schedule_rows,
+    units_of,
+)
 from mapper.presentation.charts.style import PALETTE, tips
 
 
@@ -51,7 +57,7 @@ def margins_chart(verdict: Mapping[str, Any], *, units: Mapping[str, str] | None
 
 def schedule_chart(verdict: Mapping[str, Any], *, units: Mapping[str, str] | None = None,
                    width: int = 400, height: int = 220) -> alt.LayerChart:
-    """The gain schedule as a step chart of controller gain against level.
+    """The gain schedule: controller gain against level, as the table says to apply it.
 
     Parameters
     ----------
@@ -71,8 +77,11 @@ def schedule_chart(verdict: Mapping[str, Any], *, units: Mapping[str, str] | Non
               scale=alt.Scale(zero=False, padding=12))
     x = alt.X("level:Q", title=f"operating level ({unit_out})", scale=alt.Scale(zero=False))
     data = alt.Chart({"values": rows})
-    layers = [data.mark_line(interpolate="step-after", color=PALETTE["schedule"], strokeWidth=2).encode(
-        x=x, y=y)]
+    if schedule_is_interpolated(verdict):
+        line = data.mark_line(interpolate="linear", color=PALETTE["schedule"], strokeWidth=2)
+    else:
+        line = data.mark_line(interpolate="step-after", color=PALETTE["schedule"], strokeWidth=2)
+    layers = [line.encode(x=x, y=y)]
     tested = [r for r in rows if r["tested"] is not None]
     layers.append(alt.Chart({"values": tested}).mark_point(
         color=PALETTE["schedule"], filled=True, size=50).encode(

@@ -17,7 +17,7 @@ from importlib import resources
 from typing import IO, TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
-    from mapper.presentation.report.vega import PngWriter
+    from mapper.presentation.png_export import PngExport
 
 
 @functools.lru_cache(maxsize=8)
@@ -40,14 +40,21 @@ def safe_json(spec: Any) -> str:
 
 
 def esc(value: Any) -> str:
-    """The value as HTML text, escaped; None as the empty string."""
+    """The value as HTML text, escaped; None as the empty string, booleans as yes / no."""
+    if isinstance(value, bool):
+        return "yes" if value else "no"
     return html.escape("" if value is None else str(value), quote=True)
 
 
 def num(value: Any, digits: int = 4) -> str:
-    """A number with ``digits`` significant digits, "–" when not finite, text otherwise."""
-    if value is None or isinstance(value, bool):
-        return esc(value)
+    """A number with ``digits`` significant digits, "–" when not finite, text otherwise.
+
+    Booleans read "yes" / "no" and None reads as nothing: no Python value reaches the page.
+    """
+    if isinstance(value, bool):
+        return "yes" if value else "no"
+    if value is None:
+        return ""
     try:
         x = float(value)
     except (TypeError, ValueError):
@@ -77,7 +84,7 @@ class Page:
     needs no more memory than that of a short one.
     """
 
-    def __init__(self, sink: IO[str], pngs: PngWriter | None = None) -> None:
+    def __init__(self, sink: IO[str], pngs: PngExport | None = None) -> None:
         self.sink = sink
         self.pngs = pngs
         self.n_charts = 0

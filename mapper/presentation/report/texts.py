@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import re
+
 METHOD_NOTES: tuple[tuple[str, str], ...] = (
     ("Graphical 63.2 % method",
      "Gain is the change in output over the change in input; dead time runs from the input "
@@ -42,3 +44,99 @@ CAUTIONS: tuple[str, ...] = (
     "Site procedures, management of change and licensed engineering practice take precedence "
     "over anything in this report.",
 )
+
+# ---------------------------------------------------------------- plain labels
+#: Model parameters as a person reads them.
+PARAMETER_LABELS: dict[str, str] = {
+    "gain": "Gain",
+    "time_constant": "Time constant",
+    "dead_time": "Dead time",
+    "gain_over_time_constant": "Gain / time constant",
+}
+
+#: Quality grades as written in the report.
+QUALITY_LABELS: dict[str, str] = {"good": "good", "suspect": "suspect", "rejected": "rejected",
+                                  "": "not judged"}
+
+#: Model names as written in the report.
+MODEL_LABELS: dict[str, str] = {
+    "fopdt": "first order plus dead time (FOPDT)",
+    "integrating": "integrating with dead time",
+}
+
+#: The decision as one sentence.
+DECISION_TEXT: dict[str, str] = {
+    "single": "One controller serves the whole tested range.",
+    "schedule": "A gain schedule is needed across the tested range.",
+    "insufficient": "Not enough tests to judge: no controller or schedule is handed over.",
+}
+
+#: Order and wording of known keys of a verdict's controller, schedule rows and points.
+#: A value of None leaves the key out of the report.
+SETTING_LABELS: dict[str, str | None] = {
+    "level": "Level",
+    "level_from": "From level",
+    "level_to": "To level",
+    "kc": "Controller gain Kc",
+    "ti": "Integral time Ti (s)",
+    "ti_min": "Integral time Ti (min)",
+    "kc_dimensionless": "Controller gain in % of span per % of span",
+    "proportional_band": "Proportional band (%)",
+    "action": "Controller action",
+    "rule": "How it was found",
+    "local_rule": "Tuning rule at each level",
+    "closed_loop_time": "Closed-loop time constant asked for (s)",
+    "serves_whole_range": "Serves the whole tested range",
+    "ms": "Maximum sensitivity Ms",
+    "gain_margin": "Gain margin",
+    "phase_margin_deg": "Phase margin (degrees)",
+    "slowdown": "Slower than local tuning by (times)",
+    "iae_ratio": "IAE after a load step, times that of local tuning",
+    "peak_ratio": "Peak after a load step, times that of local tuning",
+    "overshoot": "Overshoot after a setpoint step",
+    "kc_local": "Kc tuned at this level",
+    "ti_local": "Ti tuned at this level (s)",
+    "time_constant": "Time constant (s)",
+    "dead_time": "Dead time (s)",
+    "gain": "Gain",
+    "caution": None,  # shown as the caution box instead
+}
+
+#: Words for values that are codes.
+VALUE_TEXT: dict[str, str] = {
+    "simc": "SIMC (Skogestad 2003)",
+    "lambda": "lambda (IMC)",
+    "imc": "lambda (IMC)",
+    "reverse": "reverse acting",
+    "direct": "direct acting",
+    "up": "up",
+    "down": "down",
+    "constant": "constant",
+    "linear": "straight",
+    "quadratic": "quadratic",
+    "log_linear": "straight in log scale",
+    "log_quadratic": "curved in log scale",
+    "piecewise_linear": "piecewise linear through the level means",
+}
+
+
+def label(key: str) -> str:
+    """A plain label for a key: the known wording, else the words of the key."""
+    known = SETTING_LABELS.get(key) or PARAMETER_LABELS.get(key)
+    if known:
+        return known
+    words = str(key).replace("_", " ").strip()
+    return words[:1].upper() + words[1:]
+
+
+def value_text(value: object) -> object:
+    """Booleans as yes / no, known codes in words; anything else unchanged."""
+    if isinstance(value, bool):
+        return "yes" if value else "no"
+    if isinstance(value, str):
+        known = VALUE_TEXT.get(value) or PARAMETER_LABELS.get(value)
+        if known:
+            return known
+        if re.fullmatch(r"[a-z]+(_[a-z]+)+", value):  # a code this version has no words for
+            return value.replace("_", " ")
+    return value

@@ -1,0 +1,194 @@
+"""Identification from a non-steady start, on plants simulated with scipy's ODE solver.
+
+The plants, their textbook linearisations and the field-like recording (store by exception,
+then the import's uniform grid) are in ``tests/plants.py``. Every window runs from the
+previous move to the next, so all but the first start with the output still moving.
+Acceptance figures are those of issue 13: gain within 5 % and time constant within 10 % of
+the true local linearisation for at least 90 % of the moves held 0.8 time constants or
+more; 95 % intervals covering the truth at least 90 % of the time on the linear plant; no
+self-regulating move called integrating; an integrator still recognised.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from plants import Heater, LevelLoop, LinearPlant, Tank, by_exception, move_sequence, simulate, windows
+
+from mapper.identification.identify import identify
+from mapper.store.segment import uniform_grid
+
+SEEDS = range(6)
+MOVES = 10
+NOISE = 0.003  # output noise sd as a share of the typical move's response
+PLANTS = {
+    # name: (plant, base input, move size)
+    "linear": (LinearPlant("linear", dead_time=5.0, gain=2.0, time_constant=40.0), 20.0, 4.0),
+    "tank": (Tank("tank", dead_time=5.0, area=60.0, c=2.0), 20.0, 3.0),  # tau ~ 600 s at h = 100
+    "heater": (Heater("heater", dead_time=5.0), 400.0, 30.0),  # tau ~ 41 s at 78 degC
+}
+
+
+def record(plant, base, size, seed, noise=NOISE):
+    """Windows of one simulated record with their true local (gain, time constant)."""
+    rng = np.random.default_rng(seed)
+    times, levels, end = move_sequence(rng, plant, base, size, MOVES, first=150.0)
+    td, ud, yd = simulate(plant, times, levels, end)
+    sd = noise * abs(plant.local(base)[0] * size)
+    ts, us, ys = by_exception(td, ud, yd, sd, rng, dead_band=sd, max_interval=10.0, period=1.0)
+    t, u, y, _, flags = uniform_grid(ts - ts[0], us, ys, 1.0)
+    return [(w, plant.local(0.5 * (w.u_from + w.u_to)), tuple(flags)) for w in windows(t, u, y, times)]
+
+
+def fits(name, **options):
+    plant, base, size = PLANTS[name]
+    out = []
+    for seed in SEEDS:
+        for w, (gain, tau), flags in record(plant, base, size, seed):
+            r = identify(w.t, w.u, w.y, preceding=w.preceding, import_flags=flags, **options)
+            out.append((w, gain, tau, r))
+    return out
+
+
+@pytest.fixture(scope="module")
+def results():
+    return {name: fits(name) for name in PLANTS}
+
+
+def accurate(r, gain, tau):
+    return (r.gain is not None and r.time_constant is not None
+            and abs(r.gain / gain - 1) <= 0.05 and abs(r.time_constant / tau - 1) <= 0.10)
+
+
+@pytest.mark.parametrize("name", list(PLANTS))
+def test_moves_held_long_enough_give_the_local_linearisation(results, name):
+    held = [(r, gain, tau) for w, gain, tau, r in results[name] if w.hold >= 0.8 * tau]
+    assert len(held) >= 30
+    good = sum(accurate(r, gain, tau) for r, gain, tau in held)
+    assert good >= 0.9 * len(held), f"{name}: {good}/{len(held)} within 5 % / 10 %"
+
+
+def test_intervals_cover_the_truth_on_the_linear_plant(results):
+    rows = results["linear"]
+    covered = sum(
+        r.gain_lo is not None and r.gain_lo <= gain <= r.gain_hi
+        and r.time_constant_lo is not None and r.time_constant_lo <= tau <= r.time_constant_hi
+        for _, gain, tau, r in rows
+    )
+    assert covered >= 0.9 * len(rows), f"{covered}/{len(rows)}"
+
+
+@pytest.mark.parametrize("name", list(PLANTS))
+def test_no_self_regulating_move_is_called_integrating(results, name):
+    models = [r.model for *_, r in results[name]]
+    assert "integrating" not in models
+    # and with three times the noise, where the short first windows are hard to read
+    plant, base, size = PLANTS[name]
+    for seed in SEEDS:
+        for w, _, flags in record(plant, base, size, seed, noise=3 * NOISE):
+            r = identify(w.t, w.u, w.y, preceding=w.preceding)
+            assert r.model != "integrating", (name, seed, w.move, r.model_evidence)
+
+
+def test_a_start_still_moving_is_estimated_and_no_longer_suspect_by_itself(results):
+    later = [r for w, _, _, r in results["linear"] if w.move > 0]
+    assert all("start_state_estimated" in r.flags and r.start_state is not None for r in later)
+    # a long, settled window started 0.6 tau after an earlier move, carrying the import flag
+    plant = LinearPlant("linear", dead_time=5.0, gain=2.0, time_constant=40.0)
+    td, ud, yd = simulate(plant, [376.0, 400.0], [23.0, 20.0, 24.0], 700.0)
+    y = yd + np.random.default_rng(2).normal(0, NOISE * 8.0, td.size)
+    first = int(np.searchsorted(td, 376.0))
+    window = (td[first::4], ud[first::4], y[first::4])
+    preceding = (td[:first:4], ud[:first:4])
+    flags = ("next_move_before_settled",)
+    new = identify(*window, preceding=preceding, import_flags=flags)
+    old = identify(*window, import_flags=flags, start_state=False)
+    assert new.quality == "good", new.flags
+    assert old.quality != "good"
+
+
+def test_without_the_start_state_the_same_moves_are_misread():
+    # the comparison the issue asks for: the same windows fitted as if the plant were at rest
+    plant, base, size = PLANTS["linear"]
+    held_new = held_old = good_new = good_old = 0
+    for seed in SEEDS[:3]:
+        for w, (gain, tau), _ in record(plant, base, size, seed):
+            if w.move == 0 or w.hold < 0.8 * tau:
+                continue
+            new = identify(w.t, w.u, w.y, preceding=w.preceding)
+            old = identify(w.t, w.u, w.y, start_state=False)
+            held_new += 1
+            held_old += 1
+            good_new += accurate(new, gain, tau)
+            good_old += accurate(old, gain, tau)
+    assert good_new >= 0.9 * held_new
+    assert good_old <= 0.5 * held_old
+
+
+def test_a_test_cut_mid_response_agrees_with_the_same_move_from_rest():
+    # one move (up 4 at t = 400 s) recorded from rest, and the same move 0.6 tau after an
+    # earlier move of -3 (window cut to start at that earlier move)
+    plant = LinearPlant("linear", dead_time=5.0, gain=2.0, time_constant=40.0)
+    rng = np.random.default_rng(11)
+    sd = NOISE * 8.0
+    td, ud, yd = simulate(plant, [400.0], [20.0, 24.0], 480.0)
+    t_rest, u_rest = td[::4], ud[::4]
+    y_rest = yd[::4] + rng.normal(0, sd, t_rest.size)
+    rest = identify(t_rest[250:], u_rest[250:], y_rest[250:])
+    td, ud, yd = simulate(plant, [376.0, 400.0], [23.0, 20.0, 24.0], 480.0)
+    t_cut, u_cut = td[::4], ud[::4]
+    y_cut = yd[::4] + rng.normal(0, sd, t_cut.size)
+    first = int(np.searchsorted(t_cut, 376.0))
+    cut = identify(t_cut[first:], u_cut[first:], y_cut[first:], preceding=(t_cut[:first], u_cut[:first]))
+    assert "start_state_estimated" in cut.flags and "start_state_estimated" not in rest.flags
+    for name in ("gain", "time_constant", "dead_time"):  # from rest, within the cut test's interval
+        value = getattr(rest, name)
+        lo, hi = getattr(cut, name + "_lo"), getattr(cut, name + "_hi")
+        assert lo <= value <= hi, (name, value, lo, hi)
+
+
+def test_a_level_loop_is_still_recognised_as_integrating():
+    # A dh/dt = q - q_out with a fixed outflow: an integrator of gain 1/A (per second)
+    plant = LevelLoop("level", dead_time=3.0, area=50.0, outflow=10.0)
+    rng = np.random.default_rng(5)
+    times = np.array([200.0, 380.0, 560.0, 740.0])
+    levels = np.array([10.0, 12.0, 10.0, 8.5, 10.5])
+    td, ud, yd = simulate(plant, times, levels, 900.0, x0=50.0)
+    sd = 0.02
+    ts, us, ys = by_exception(td, ud, yd, sd, rng, dead_band=sd, max_interval=10.0, period=1.0)
+    t, u, y, _, flags = uniform_grid(ts - ts[0], us, ys, 1.0)
+    for w in windows(t, u, y, times):
+        r = identify(w.t, w.u, w.y, preceding=w.preceding, import_flags=flags)
+        assert r.model == "integrating", (w.move, r.model_evidence)
+        assert r.gain == pytest.approx(1.0 / 50.0, rel=0.02)
+        assert r.model_evidence.startswith("integrating")
+
+
+def _gridded(plant, times, levels, end, x0=None, seed=3, noise=0.05):
+    rng = np.random.default_rng(seed)
+    td, ud, yd = simulate(plant, times, levels, end, x0=x0)
+    ts, us, ys = by_exception(td, ud, yd, noise, rng, dead_band=noise, max_interval=10.0, period=1.0)
+    t, u, y, _, _ = uniform_grid(ts - ts[0], us, ys, 1.0)
+    return t, u, y, list(np.flatnonzero(np.diff(u)) + 1)
+
+
+def test_whole_record_fit_and_the_test_of_nonlinearity():
+    from mapper.identification.record import fit_record
+
+    # linear plant: one model explains the record, and the local models agree
+    plant = LinearPlant("linear", dead_time=5.0, gain=2.0, time_constant=40.0)
+    times = np.array([150.0, 200.0, 250.0, 300.0, 350.0, 400.0])
+    levels = np.array([20.0, 23.0, 19.0, 22.0, 18.0, 21.0, 24.0])
+    t, u, y, starts = _gridded(plant, times, levels, 460.0)
+    linear = fit_record(t, u, y, starts)
+    assert len(linear.local) == len(times)
+    assert linear.whole.gain == pytest.approx(2.0, rel=0.03)
+    assert linear.whole.time_constant == pytest.approx(40.0, rel=0.05)
+    assert not linear.differ, linear.p_value
+    # tank over a wide range of levels (K and tau grow as sqrt(h)): the local models differ
+    tank = Tank("tank", dead_time=5.0, area=10.0, c=2.0)
+    times = np.array([300.0, 500.0, 700.0, 900.0])
+    levels = np.array([10.0, 14.0, 18.0, 13.0, 8.0])
+    t, u, y, starts = _gridded(tank, times, levels, 1100.0, noise=0.02)
+    nonlinear = fit_record(t, u, y, starts)
+    assert nonlinear.differ, nonlinear.p_value
