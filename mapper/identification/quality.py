@@ -32,7 +32,6 @@ from mapper.constants import (
     MIN_RESPONSE_SIGNAL_TO_NOISE,
     MIN_SAMPLES_PER_TIME_CONSTANT,
     MISFIT_FRACTION,
-    NOISE_BAND_SDS,
     QUANTUM_LEVELS,
     SETTLE_TIME_CONSTANTS,
 )
@@ -160,7 +159,6 @@ def assess(
         period = median(np.diff(t))
     t_end = float(t[-1])
     sigma = standard_deviation(residuals) if residuals is not None and residuals.size else noise_sd(y)
-    band = NOISE_BAND_SDS * sigma
     i0 = step.index
     # drift before the step: slope of a straight line through the baseline
     if i0 >= 2 * MIN_BASELINE_SAMPLES and abs(response) > 0:
