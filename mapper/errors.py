@@ -53,3 +53,8 @@ class IdentificationError(MapperError, ValueError):
 
 class OutOfRangeError(MapperError, ValueError):
     """A query asks for an operating level outside the tested range."""
+
+
+class UsageError(MapperError, ValueError):
+    """The command was asked wrongly (e.g. no campaign named in a store holding several);
+    the command line exits 2 and nothing is changed."""

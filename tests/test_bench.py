@@ -37,6 +37,11 @@ def test_bench_tiny_run_reports_every_field(tmp_path):
     # rows are labelled with the scale actually run, never a fixed "10x"
     assert figures["scale"] == 2 and "at 2x the tests" in result.stdout and "10x" not in result.stdout
     # start-up rows: both commands measured against the bare imports, none loading charting or signal code
+    # end-to-end rows as a user runs the commands, at both sizes, next to the notebook loop
+    assert [row["tests"] for row in figures["processes"]] == [4, 8]
+    for row in figures["processes"]:
+        assert min(row["import_seconds"], row["fit_seconds"], row["loop_seconds"]) > 0
+        assert row["ratio"] == pytest.approx(row["loop_seconds"] / (row["import_seconds"] + row["fit_seconds"]))
     rows = {row["command"]: row for row in figures["start_up"]}
     assert set(rows) == {"mapper --help", "mapper params"}
     for row in rows.values():

@@ -46,7 +46,7 @@ def test_view_has_every_public_column_and_plain_client_can_query(tmp_path, small
     assert [lv for lv, _ in levels] == [30.0, 30.0, 60.0, 60.0]  # campaign file wins
     assert [d for _, d in levels] == ["up", "down", "up", "down"]
     assert samples == 4 * 200
-    assert version == "1"
+    assert version == "2"  # exclusions and notes (issue 15)
 
 
 def test_params_json_and_filters(tmp_path, small_campaign):
@@ -56,10 +56,13 @@ def test_params_json_and_filters(tmp_path, small_campaign):
     assert out.returncode == 0, out.stderr
     rows = json.loads(out.stdout)
     assert len(rows) == 1 and rows[0]["level"] == 60.0 and rows[0]["direction"] == "down"
-    assert set(rows[0]) == set(TEST_PARAMS_NAMES)
+    # the view's columns, plus the curation columns and the units object (issue 15)
+    assert set(rows[0]) - set(TEST_PARAMS_NAMES) <= {"excluded", "exclusion_reason", "excluded_by",
+                                                     "excluded_at", "note", "units"}
+    assert set(TEST_PARAMS_NAMES) <= set(rows[0]) and rows[0]["units"]["gain"] == "cm/%"
     assert rows[0]["gain"] is None  # not fitted yet
     csv_out = run_mapper("params", "--format", "csv", db=db)
-    assert csv_out.stdout.splitlines()[0].split(",") == list(TEST_PARAMS_NAMES)
+    assert csv_out.stdout.splitlines()[0].split(",")[:len(TEST_PARAMS_NAMES)] == list(TEST_PARAMS_NAMES)
 
 
 def test_loose_files_with_columns(tmp_path):

@@ -1,41 +1,38 @@
 """Jobs that combine several modules: what the map, at, verdict, compare, report and demo
-commands do. Each takes a store path and plain options and returns plain results, so the
-command line stays thin and notebooks can call the same functions.
+commands do. Each takes a store path (or an open :class:`~mapper.app.session.Session`) and
+plain options and returns plain results, so the command line stays thin and notebooks can
+call the same functions. Inside one job the store is opened once and the map, verdict and
+comparisons are built once (the session caches them).
 """
 
 from __future__ import annotations
 
 import shutil
 import time
-from dataclasses import dataclass, replace
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, cast
 
 import numpy as np
 import pandas as pd
 
-from mapper.analysis.compare import compare_campaigns, compare_directions, compare_repeats
-from mapper.analysis.influence import verdict_influence, with_influence
-from mapper.analysis.opmap import OperatingMap, build_map
-from mapper.analysis.verdict import Verdict, decide
-from mapper.errors import MapperError, NotFoundError
+from mapper.analysis.opmap import OperatingMap
+from mapper.analysis.verdict import Verdict
+from mapper.app.session import AGAINST, CampaignData, Session, campaign_data
+from mapper.errors import NotFoundError
 from mapper.identification.identify import FitResult
 from mapper.store.database import Store
+
+__all__ = ["AGAINST", "CampaignData", "SAFETY_NOTE", "Session", "analyse_store", "compare_two",
+           "comparisons", "operating_map", "parameters_at", "run_demo", "verdict_for",
+           "write_campaign_report", "campaign_data"]
 
 SAFETY_NOTE = ("Step tests and new tuning can hurt people and equipment: agree limits with "
                "operations, stay clear of alarm and trip limits, verify settings before use, and "
                "follow site procedures and licensed practice.")
 
-
-@dataclass
-class CampaignData:
-    """One campaign's rows of ``test_params`` with its units and instrument ranges."""
-
-    name: str
-    params: pd.DataFrame
-    units: dict
-    ranges: dict
-    note: str = ""
+Progress = Callable[[int, int, str], None]
 
 
 def _finite(value) -> float | None:
@@ -46,39 +43,14 @@ def _finite(value) -> float | None:
     return value if np.isfinite(value) else None
 
 
-def load_campaign_data(store: Store, campaign: str | None = None) -> CampaignData:
-    """The named campaign, or the newest one when the store holds several."""
-    campaigns = store.campaign_info()
-    if not campaigns:
-        raise NotFoundError(f"{store.path}: the store holds no campaign yet",
-                            hint="run 'mapper import FOLDER' and 'mapper fit' first")
-    note = ""
-    if campaign is None:
-        info = campaigns[-1]
-        if len(campaigns) > 1:
-            note = (f"campaign '{info['name']}' (newest of {len(campaigns)}; choose another "
-                    "with --campaign)")
-    else:
-        matches = [c for c in campaigns if c["name"] == campaign]
-        if not matches:
-            names = ", ".join(repr(c["name"]) for c in campaigns)
-            raise NotFoundError(f"campaign '{campaign}' is not in {store.path}",
-                                hint=f"campaigns stored: {names}")
-        info = matches[0]
-    params = store.params(campaign=info["name"])
-    if params["quality"].isna().all():
-        raise MapperError(f"campaign '{info['name']}' has no fitted tests",
-                          hint="run 'mapper fit' first")
-    units = {"input": info.get("input_unit") or "", "output": info.get("output_unit") or ""}
-    ranges = {}
-    for side in ("input", "output"):
-        low, high = _finite(info.get(f"{side}_range_low")), _finite(info.get(f"{side}_range_high"))
-        if low is not None and high is not None:
-            ranges[side] = [low, high]
-    return CampaignData(info["name"], params, units, ranges, note)
-
-
-AGAINST = {"level": "level", "input": "input_level"}
+@contextmanager
+def reading(source) -> Iterator[Session]:
+    """A session on ``source``: an open session is used as it is, a path is opened read-only."""
+    if isinstance(source, Session):
+        yield source
+        return
+    with Session(source) as session:
+        yield session
 
 
 def operating_map(store_path, *, campaign: str | None = None, against: str = "level",
@@ -90,17 +62,11 @@ def operating_map(store_path, *, campaign: str | None = None, against: str = "le
 
     ``against="level"`` maps against the operating level in output units (the brief's
     definition); ``against="input"`` against the input's operating value instead (the mean
-    of its settled values before and after each move), e.g. a valve position.
+    of its settled values before and after each move), e.g. a valve position. Excluded tests
+    are left out. With several campaigns in the store one must be named.
     """
-    if against not in AGAINST:
-        raise MapperError(f"cannot map against '{against}'", hint="use level or input")
-    with Store(store_path, read_only=True) as store:
-        data = load_campaign_data(store, campaign)
-        if against == "input":
-            levels = store.input_levels()
-            data.params["input_level"] = [levels.get(int(i), np.nan) for i in data.params["test_id"]]
-    opmap = build_map(data.params, against=AGAINST[against])
-    return data, (with_influence(opmap, data.params) if influence else opmap)
+    with reading(store_path) as session:
+        return session.operating_map(campaign, against=against, influence=influence)
 
 
 def parameters_at(store_path, level: float, *, campaign: str | None = None,
@@ -114,14 +80,9 @@ def verdict_for(store_path, *, campaign: str | None = None, ms_max: float = 2.0,
                 slowdown_max: float = 2.0, closed_loop_time: float | None = None,
                 rule: str = "simc", schedule_out: Path | None = None) -> tuple[CampaignData, Verdict]:
     """Single controller or schedule for a campaign; optionally write the schedule CSV."""
-    data, opmap = operating_map(store_path, campaign=campaign)
-    verdict = decide(data.params, ms_max=ms_max, slowdown_max=slowdown_max,
-                     closed_loop_time=closed_loop_time, ranges=data.ranges or None, rule=rule,
-                     opmap=opmap)
-    depends = verdict_influence(data.params, decision=verdict.decision, opmap=opmap, ms_max=ms_max,
-                                slowdown_max=slowdown_max, closed_loop_time=closed_loop_time,
-                                ranges=data.ranges or None, rule=rule)
-    verdict = replace(verdict, depends_on=depends.entries, depends_on_sentence=depends.sentence)
+    with reading(store_path) as session:
+        data, verdict = session.verdict(campaign, ms_max=ms_max, slowdown_max=slowdown_max,
+                                        closed_loop_time=closed_loop_time, rule=rule)
     if schedule_out is not None:
         verdict.write_schedule_csv(Path(schedule_out), units=data.units)
     return data, verdict
@@ -129,17 +90,14 @@ def verdict_for(store_path, *, campaign: str | None = None, ms_max: float = 2.0,
 
 def comparisons(store_path, *, campaign: str | None = None) -> list[dict]:
     """Repeats and up-against-down comparisons inside one campaign."""
-    with Store(store_path, read_only=True) as store:
-        data = load_campaign_data(store, campaign)
-    return compare_repeats(data.params) + compare_directions(data.params)
+    with reading(store_path) as session:
+        return session.comparisons(campaign)
 
 
 def compare_two(store_path, first: str, second: str) -> list[dict]:
     """Campaign ``first`` against ``second``: which parameters moved, where, how significantly."""
-    with Store(store_path, read_only=True) as store:
-        a = load_campaign_data(store, first)
-        b = load_campaign_data(store, second)
-    return compare_campaigns(a.params, b.params, names=(a.name, b.name))
+    with reading(store_path) as session:
+        return session.compare_two(first, second)
 
 
 def _fitted_curve(fit: dict | None, t: np.ndarray, u: np.ndarray) -> np.ndarray | None:
@@ -157,7 +115,8 @@ def _iter_tests(store: Store, params: pd.DataFrame, *, batch: int = 32):
     a time, so at most ``batch`` tests' samples are in memory whatever the campaign size.
     """
     from mapper.presentation.report import test_sort_key
-    rows = sorted(cast("list[dict[str, Any]]", params.to_dict("records")), key=test_sort_key)
+    records: list[dict] = params.to_dict("records")
+    rows = sorted(records, key=test_sort_key)
     for start in range(0, len(rows), batch):
         chunk = rows[start:start + batch]
         ids = [int(row["test_id"]) for row in chunk]
@@ -171,7 +130,8 @@ def _iter_tests(store: Store, params: pd.DataFrame, *, batch: int = 32):
             t, u, y = samples.pop(test_id)
             fit = fits.pop(test_id, None)
             item = dict(row)
-            item.update(note=notes.get(test_id, ""), t=t, u=u, y=y,
+            # the params row's note carries later notes too (with their time); the file's otherwise
+            item.update(note=row.get("note") or notes.get(test_id, ""), t=t, u=u, y=y,
                         fitted=_fitted_curve(fit, t, u),
                         step_time=_finite(fit.get("step_time")) if fit else None)
             yield item
@@ -189,32 +149,43 @@ def write_campaign_report(store_path, out: Path, *, campaign: str | None = None,
                           png_dir: Path | None = None, ms_max: float = 2.0,
                           slowdown_max: float = 2.0, compare_with: str | None = None,
                           schedule_out: Path | None = None, prepared_by: str | None = None,
-                          checked_by: str | None = None) -> ReportOutcome:
+                          checked_by: str | None = None,
+                          progress: Progress | None = None) -> ReportOutcome:
     """The self-contained HTML report of a campaign (and PNG charts when ``png_dir``; the
     schedule CSV too when ``schedule_out``); ``prepared_by`` and ``checked_by`` fill the
-    record block."""
+    record block. The store is opened once for the whole report."""
     from mapper.presentation.report import write_report
-    data, verdict = verdict_for(store_path, campaign=campaign, ms_max=ms_max, slowdown_max=slowdown_max,
-                                schedule_out=schedule_out)
-    opmap = build_map(data.params)
-    found = comparisons(store_path, campaign=data.name)
-    if compare_with:
-        found += compare_two(store_path, compare_with, data.name)
-    summary = {"name": data.name, "n_tests": int(len(data.params)), "units": data.units}
-    for quality in ("good", "suspect", "rejected"):
-        summary[f"{quality} tests"] = int((data.params["quality"] == quality).sum())
-    if data.note:
-        summary["note"] = data.note
-    with Store(store_path, read_only=True) as store:
-        described = store.campaign_info(data.name)
-        if described and described[0].get("description"):
-            summary["description"] = str(described[0]["description"])
+    with reading(store_path) as session:
+        data, verdict = verdict_for(session, campaign=campaign, ms_max=ms_max,
+                                    slowdown_max=slowdown_max, schedule_out=schedule_out)
+        _, opmap = session.operating_map(data.name)
+        found = list(session.comparisons(data.name))
+        if compare_with:
+            found += session.compare_two(compare_with, data.name)
+        summary: dict = {"name": data.name, "n_tests": int(len(data.params)), "units": data.units}
+        if data.description:
+            summary["description"] = data.description
+        for quality in ("good", "suspect", "rejected"):
+            summary[f"{quality} tests"] = int((data.params["quality"] == quality).sum())
+        if "excluded" in data.params.columns:
+            summary["excluded tests"] = int(data.params["excluded"].fillna(False).astype(bool).sum())
+        if data.note:
+            summary["note"] = data.note
+        tests = _iter_tests(session.store, data.params)
+        if progress is not None:
+            tests = _counted(tests, len(data.params), progress, "writing the report")
         # tests stream from the store into the file one at a time
         info = write_report(out, campaign=summary, params=data.params, trend=opmap.trend_frame(),
                             map_summary=opmap.summary(), verdict=verdict.report_dict(),
-                            comparisons=found, tests=_iter_tests(store, data.params),
+                            comparisons=found, tests=tests,
                             png_dir=png_dir, prepared_by=prepared_by, checked_by=checked_by)
     return ReportOutcome(Path(info.path), info.size_bytes, tuple(info.png_files), verdict)
+
+
+def _counted(items, total: int, progress: Progress, label: str):
+    for done, item in enumerate(items, start=1):
+        yield item
+        progress(done, total, label)
 
 
 def analyse_store(store_path, *, out_dir: Path, campaign: str | None = None) -> ReportOutcome:
@@ -242,11 +213,12 @@ class DemoOutcome:
     lines: list[str]
 
 
-def run_demo(out_dir: Path, *, png: bool = False) -> DemoOutcome:
+def run_demo(out_dir: Path, *, png: bool = False, progress: Progress | None = None) -> DemoOutcome:
     """The whole job on the sample campaign, into a fresh store inside ``out_dir``.
 
     Never touches any other store: the demo store lives in ``out_dir`` and is replaced on
-    each run.
+    each run. The store is opened once for the whole demo (import, fit, map, verdict,
+    comparisons and report share one session).
     """
     from mapper.identification.fitting import fit_store
     from mapper.presentation.output import format_records
@@ -264,30 +236,33 @@ def run_demo(out_dir: Path, *, png: bool = False) -> DemoOutcome:
         if stale.exists():
             stale.unlink()
     lines: list[str] = []
-    with Store(db) as store:
-        summary = import_sources(store, folders)
-        lines += summary.lines()
-        fitted = fit_store(store)
-        lines += fitted.lines()
-        names = [c["name"] for c in store.campaign_info()]
-    newest = names[-1]
-    data, opmap = operating_map(db, campaign=newest, influence=False)
-    lines += ["", f"Operating map of '{newest}':"]
-    lines += format_records(opmap.summary(), "table", kind="map").splitlines()
     png_dir = out_dir / "charts" if png else None
     if png_dir is not None and png_dir.exists():
         shutil.rmtree(png_dir)
-    report = write_campaign_report(db, out_dir / "report.html", campaign=newest, png_dir=png_dir,
-                                   compare_with=names[0] if len(names) > 1 else None,
-                                   schedule_out=out_dir / "schedule.csv")
-    assert report.verdict is not None  # write_campaign_report always decides
-    result = report.verdict.to_dict()
-    lines += ["", f"Verdict: {result['decision']}"] + [f"  - {r}" for r in result["reasons"]]
-    if report.verdict.depends_on_sentence:
-        lines += [f"  - {report.verdict.depends_on_sentence}"]
-    if len(names) > 1:
-        moved = compare_two(db, names[0], newest)
-        lines += ["", f"'{names[0]}' against '{newest}':"] + [f"  - {m['sentence']}" for m in moved[:6]]
+    with Session(db, write=True, create=True) as session:
+        store = session.store
+        summary = import_sources(store, folders, progress=progress)
+        lines += summary.lines()
+        fitted = fit_store(store, progress=(lambda done, total: progress(done, total, "fitting"))
+                           if progress else None)
+        lines += fitted.lines()
+        session.forget()
+        names = session.campaign_names()
+        newest = names[-1]
+        _, opmap = session.operating_map(newest, influence=False)
+        lines += ["", f"Operating map of '{newest}':"]
+        lines += format_records(opmap.summary(), "table", kind="map").splitlines()
+        report = write_campaign_report(session, out_dir / "report.html", campaign=newest, png_dir=png_dir,
+                                       compare_with=names[0] if len(names) > 1 else None,
+                                       schedule_out=out_dir / "schedule.csv", progress=progress)
+        result = report.verdict.to_dict() if report.verdict is not None else {}
+        lines += ["", f"Verdict: {result.get('decision')} (campaign '{newest}')"]
+        lines += [f"  - {r}" for r in result.get("reasons", [])]
+        if report.verdict is not None and report.verdict.depends_on_sentence:
+            lines += [f"  - {report.verdict.depends_on_sentence}"]
+        if len(names) > 1:
+            moved = session.compare_two(names[0], newest)
+            lines += ["", f"'{names[0]}' against '{newest}':"] + [f"  - {m['sentence']}" for m in moved[:6]]
     seconds = time.perf_counter() - started
     lines += ["", f"store:    {db}", f"report:   {report.path} ({report.size_bytes / 1e6:.1f} MB)",
               f"schedule: {out_dir / 'schedule.csv'}"]

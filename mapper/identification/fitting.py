@@ -15,7 +15,7 @@ import os
 import sys
 import time
 from collections import deque
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
 
@@ -107,9 +107,12 @@ def _jobs(store: Store, test_ids: list[int], method: str) -> Iterator[tuple]:
 
 
 def fit_store(store: Store, *, refit: bool = False, method: str = "least_squares",
-              workers: int | None = None,
+              workers: int | None = None, test_ids: Sequence[int] | None = None,
               progress: Callable[[int, int], None] | None = None) -> FitSummary:
     """Identify every test of ``store`` that has no fit yet (all of them with ``refit``).
+
+    With ``test_ids`` only those tests are considered (the command line passes the named
+    campaign's tests or the ids given, so a refit never silently spans the whole store).
 
     Parameters
     ----------
@@ -119,6 +122,8 @@ def fit_store(store: Store, *, refit: bool = False, method: str = "least_squares
         Redo every test, replacing earlier fits.
     method : str, default "least_squares"
         One of :data:`mapper.identification.identify.ESTIMATORS`.
+    test_ids : sequence of int, optional
+        The tests to consider (default every test of the store).
     workers : int, optional
         Processes to use, the calling one included (it reads, writes and fits while
         ``workers - 1`` helpers fit); default all cores for large campaigns, one for
@@ -127,7 +132,11 @@ def fit_store(store: Store, *, refit: bool = False, method: str = "least_squares
     if method not in ESTIMATORS:
         from mapper.errors import MapperError
         raise MapperError(f"unknown method '{method}'", hint="choose one of " + ", ".join(ESTIMATORS))
-    test_ids = store.test_ids(unfitted_only=not refit)
+    candidates = store.test_ids(unfitted_only=not refit)
+    if test_ids is not None:
+        wanted = {int(i) for i in test_ids}
+        candidates = [i for i in candidates if i in wanted]
+    test_ids = candidates
     total = len(test_ids)
     if workers is None:
         workers = (os.cpu_count() or 1) if total >= PARALLEL_FROM else 1

@@ -90,9 +90,7 @@ def first_order_filter(x: np.ndarray, pole: float) -> np.ndarray:
             y[..., m:] += weight * x[..., :-m]
         return y
     block = min(n, max(1, int(_BLOCK_LOG_SCALE / rate)))
-    k = np.arange(block, dtype=float)
-    grow = np.exp(k * rate)  # a^-k
-    decay = np.exp(-k * rate)  # a^k
+    grow, decay = _powers(rate, block)
     if block == n:
         return decay * np.cumsum(x * grow, axis=-1)
     y = np.empty_like(x)
@@ -106,6 +104,20 @@ def first_order_filter(x: np.ndarray, pole: float) -> np.ndarray:
         y[..., start:stop] = part
         carry = part[..., -1]
     return y
+
+
+_LAST_POWERS: list = [None, None, None]  # (rate, block) and its powers: callers repeat a pole
+
+
+def _powers(rate: float, block: int) -> tuple[np.ndarray, np.ndarray]:
+    """``a^-k`` and ``a^k`` for ``k < block``, ``a = exp(-rate)`` (the last pair is kept)."""
+    if _LAST_POWERS[0] == (rate, block):
+        return _LAST_POWERS[1], _LAST_POWERS[2]
+    k = np.arange(block, dtype=float) * rate
+    grow = np.exp(k)
+    decay = 1.0 / grow
+    _LAST_POWERS[:] = [(rate, block), grow, decay]
+    return grow, decay
 
 
 def _shifted_pair(w: np.ndarray, d: int, c1: float, c2: float) -> np.ndarray:

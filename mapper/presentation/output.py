@@ -5,15 +5,20 @@ from __future__ import annotations
 import csv
 import io
 import json
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 
 from mapper.records import plain
 
 _TABLE_COLUMNS = {
     "params": [
-        ("test_id", "id"), ("campaign", "campaign"), ("file", "file"), ("level", "level"),
-        ("direction", "dir"), ("model", "model"), ("gain", "gain"), ("time_constant", "time const s"),
-        ("dead_time", "dead time s"), ("nrmse", "nrmse"), ("quality", "quality"), ("flags", "flags"),
+        ("test_id", "id"), ("file", "file"), ("level", "level"),
+        ("direction", "dir"), ("model", "model"), ("gain", "gain"), ("time_constant", "time constant"),
+        ("dead_time", "dead time"), ("nrmse", "nrmse"), ("quality", "quality"), ("flags", "flags"),
+        ("excluded", "excluded"), ("note", "note"),
+    ],
+    "campaigns": [
+        ("campaign", "campaign"), ("description", "description"), ("tests", "tests"),
+        ("levels", "levels tested"), ("imported", "imported (UTC)"), ("excluded", "excluded"),
     ],
     "map": [
         ("parameter", "parameter"), ("shape", "trend"), ("at_low_end", "at low end"),
@@ -27,6 +32,8 @@ def _cell(value, interval=None) -> str:
     value = plain(value)
     if value is None:
         return "-"
+    if isinstance(value, bool):
+        return "yes" if value else "no"
     if isinstance(value, list):
         return ",".join(str(v) for v in value) or "-"
     if isinstance(value, float):
@@ -61,8 +68,12 @@ def table(records: Sequence[dict], columns: Sequence[tuple[str, str]] | None = N
     return "\n".join(line.rstrip() for line in lines)
 
 
-def format_records(records: Sequence[dict], fmt: str, *, kind: str | None = None) -> str:
-    """Records as ``table``, ``csv`` or ``json`` text (json keys as given)."""
+def format_records(records: Sequence[dict], fmt: str, *, kind: str | None = None,
+                   units: Mapping[str, str] | None = None) -> str:
+    """Records as ``table``, ``csv`` or ``json`` text (json keys as given).
+
+    ``units`` (``{key: unit}``) puts units into the table's headers: ``gain (degC/%)``.
+    """
     records = [plain(dict(r)) for r in records]
     if fmt == "json":
         return json.dumps(records, indent=2)
@@ -75,7 +86,10 @@ def format_records(records: Sequence[dict], fmt: str, *, kind: str | None = None
                 writer.writerow({k: (";".join(map(str, v)) if isinstance(v, list) else
                                      ("" if v is None else v)) for k, v in record.items()})
         return buffer.getvalue().rstrip("\n")
-    return table(records, _TABLE_COLUMNS.get(kind) if kind is not None else None)
+    columns = _TABLE_COLUMNS.get(kind) if kind else None
+    if columns is not None and units:
+        columns = [(key, f"{title} ({units[key]})" if units.get(key) else title) for key, title in columns]
+    return table(records, columns)
 
 
 def format_object(obj: dict, fmt: str) -> str:

@@ -26,6 +26,7 @@ if TYPE_CHECKING:  # pandas and pyarrow load on first use: `mapper params` start
 from mapper import __version__
 from mapper.columns import FIT_LIST_COLUMNS, FIT_VALUE_COLUMNS
 from mapper.errors import NotAStoreError, NotFoundError, StoreError, StoreInUseError
+from mapper.store.curation import CURATION_SCHEMA, upgrade, with_curation
 from mapper.store.schema import (
     ADDED_COLUMNS,
     SCHEMA,
@@ -36,7 +37,7 @@ from mapper.store.schema import (
 )
 from mapper.store.segment import TestWindow
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2  # 2: exclusions and notes after import (store/curation.py)
 DEFAULT_STORE = "mapper.duckdb"
 STORE_ENV = "MAPPER_DB"
 LOCK_WAIT_ENV = "MAPPER_LOCK_WAIT"
@@ -133,6 +134,7 @@ class Store:
         self.connection = probe or _connect(self.path, read_only, wait)
         if exists and not read_only:
             self._add_registered_columns()
+            upgrade(self.connection, SCHEMA_VERSION)  # an older store gains the curation tables
 
     def _add_registered_columns(self) -> None:
         """Give a store made by an earlier mapper the columns added since (schema.ADDED_COLUMNS)."""
@@ -176,7 +178,7 @@ class Store:
         con = duckdb.connect(str(partial))
         try:
             con.execute("BEGIN TRANSACTION")
-            for statement in SCHEMA:
+            for statement in [*SCHEMA, *CURATION_SCHEMA]:
                 con.execute(statement)
             con.execute("INSERT OR IGNORE INTO mapper_meta VALUES ('schema_version', ?), "
                         "('created_by', ?)", [str(SCHEMA_VERSION), f"mapper {__version__}"])
@@ -411,12 +413,14 @@ class Store:
     def params(self, *, campaign: str | None = None, level_min: float | None = None,
                level_max: float | None = None, direction: str | None = None,
                include_rejected: bool = True) -> pd.DataFrame:
-        """Rows of ``test_params`` with optional filters, ordered by campaign, level, id."""
+        """Rows of ``test_params`` with optional filters, ordered by campaign, level, id, plus
+        ``excluded``, ``exclusion_reason``, ``excluded_by``, ``excluded_at`` and ``note``
+        (:func:`mapper.store.curation.with_curation`)."""
         from mapper.store.queries import params_query
         sql, bound = params_query(campaign, level_min, level_max, direction, include_rejected)
         frame = self.connection.execute(sql, bound).df()
         frame["flags"] = [list(f) if f is not None else [] for f in frame["flags"]]
-        return frame
+        return with_curation(self.connection, frame)
 
     def input_levels(self) -> dict[int, float]:
         """Operating level of each test on the input side: the mean of the input's first and

@@ -220,7 +220,8 @@ def read_signals(path: Path, time_column: str, input_column: str, output_column:
         flags.append("bad_rows_dropped")
     n = len(u)
     if n == 0:
-        raise DataError(f"{path}: no readable data rows", hint="export the test again")
+        what = f"no data rows left after dropping {dropped} bad rows" if dropped else "header only, no data rows"
+        raise DataError(f"{path}: {what}", hint="export the test again")
     _check_finite(path, input_column, u, lines)
     _check_finite(path, output_column, y, lines)
     if np.ma.is_masked(raw_time):
