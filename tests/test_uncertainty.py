@@ -16,7 +16,12 @@ from scipy.signal import lfilter
 from mapper.identification.flags import FLAGS
 from mapper.identification.identify import identify
 from mapper.identification.models import simulate_fopdt
-from mapper.identification.uncertainty import _ar1_times, _q_times, disturbance_covariance
+from mapper.identification.uncertainty import (
+    _ar1_times,
+    _q_times,
+    _share_likelihood_terms,
+    disturbance_covariance,
+)
 
 GAIN, TIME_CONSTANT, DEAD_TIME, PERIOD = 2.0, 40.0, 8.0, 1.0
 SAMPLES = 400
@@ -123,3 +128,26 @@ def test_load_step_during_the_response_is_flagged():
 def test_disturbance_flags_are_registered_with_text_and_effect():
     for name in ("load_change", "slow_disturbance"):
         assert FLAGS[name].effect == "suspect" and FLAGS[name].text.endswith(".")
+
+
+@pytest.mark.parametrize("with_correlated", [True, False])
+def test_stacked_grid_solve_matches_dense_algebra(with_correlated):
+    """The stacked tridiagonal solve gives z'H^-1 z, log det H and z'Rz of dense linear algebra.
+
+    Reference: numpy's dense solve and slogdet on ``H = (1 - w) I + w R``,
+    ``R[i, j] = a^|i-j|`` built entry by entry.
+    """
+    rng = np.random.default_rng(7)
+    n, a, shares = 60, 0.93, (0.0, 0.1, 0.6, 1.0)
+    z = rng.normal(size=(n, 4))
+    grams, log_dets, solved, correlated = _share_likelihood_terms(z, a, shares, with_correlated)
+    R = a ** np.abs(np.subtract.outer(np.arange(n), np.arange(n)))
+    assert solved.all() and grams.shape == (len(shares), 4, 4)
+    for k, w in enumerate(shares):
+        H = (1.0 - w) * np.eye(n) + w * R
+        np.testing.assert_allclose(grams[k], z.T @ np.linalg.solve(H, z), rtol=1e-9, atol=1e-9)
+        assert log_dets[k] == pytest.approx(np.linalg.slogdet(H)[1], abs=1e-9)
+    if with_correlated:
+        np.testing.assert_allclose(correlated, z.T @ R @ z, rtol=1e-9)
+    else:
+        assert correlated is None

@@ -251,7 +251,7 @@ def _q_times(z: np.ndarray, a: float) -> np.ndarray:
 
 
 def _share_likelihood_terms(
-    z: np.ndarray, a: float, shares: tuple[float, ...]
+    z: np.ndarray, a: float, shares: tuple[float, ...], with_correlated: bool = True
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray | None]:
     """``z' H^-1 z`` and ``log det H`` for ``H = (1 - w) I + w R`` at every share ``w``.
 
@@ -272,7 +272,8 @@ def _share_likelihood_terms(
     solved : ndarray of bool, shape (len(shares),)
     correlated : ndarray, shape (m, m), or None
         ``z' R z``, from one more block ``Q`` solved beside them (``R z = (1 - a^2) Q^-1 z``);
-        None when its factorisation failed.
+        None when ``with_correlated`` is False or the stacked factorisation failed (then
+        every share is solved on its own, as a block of its own would be).
 
     Notes
     -----
@@ -284,7 +285,9 @@ def _share_likelihood_terms(
     exactly as a factorisation of its own gives them.
     """
     n, m = z.shape
-    w = np.append(np.asarray(shares, dtype=float), 0.0)  # the last block: Q itself
+    w = np.asarray(shares, dtype=float)
+    if with_correlated:
+        w = np.append(w, 0.0)  # the last block: Q itself
     k = w.size
     a2 = a * a
     diagonal = np.empty((k, n))
@@ -294,12 +297,13 @@ def _share_likelihood_terms(
     off_diagonal[:, :-1] = (-(1.0 - w) * a)[:, None]
     factor_d, factor_e, info = lapack.dpttrf(diagonal.ravel(), off_diagonal.ravel()[:-1])
     if info == 0:
-        rhs = np.asfortranarray(np.vstack([np.tile(_q_times(z.copy(), a), (k - 1, 1)), z]))
+        rhs = np.tile(_q_times(z.copy(), a), (len(shares), 1))
+        rhs = np.asfortranarray(np.vstack([rhs, z]) if with_correlated else rhs)
         solution, info = lapack.dpttrs(factor_d, factor_e, rhs)
     if info != 0:  # some block is not positive definite: one share at a time
-        if len(shares) == 1:
+        if k == 1:
             return np.empty((0, m, m)), np.empty(0), np.zeros(1, dtype=bool), None
-        parts = [_share_likelihood_terms(z, a, (share,)) for share in shares]
+        parts = [_share_likelihood_terms(z, a, (share,), False) for share in shares]
         return (
             np.concatenate([part[0] for part in parts]),
             np.concatenate([part[1] for part in parts]),
@@ -308,7 +312,10 @@ def _share_likelihood_terms(
         )
     grams = z.T @ solution.reshape(k, n, m)
     log_dets = np.log(factor_d).reshape(k, n).sum(axis=1) - math.log1p(-a2)
+    if not with_correlated:
+        return grams, log_dets, np.ones(k, dtype=bool), None
     return grams[:-1], log_dets[:-1], np.ones(k - 1, dtype=bool), (1.0 - a2) * grams[-1]
+
 
 def disturbance_covariance(jacobian: np.ndarray, residuals: np.ndarray) -> DisturbanceCovariance:
     """Covariance of output-error estimates with a slow disturbance modelled, not assumed away.
