@@ -101,29 +101,30 @@ def find_load_change(
     if last - first < 3 or not (white_sd > 0 or correlated_sd > 0):
         return None
     candidates = np.unique(np.linspace(first, last, min(MAX_CANDIDATES, last - first)).astype(int))
-    lag = np.arange(n)[:, None] - candidates[None, :]
     if time_constant_samples is not None and time_constant_samples > 0:
-        # one response, shifted: index -1 of the padded response is the zero before the change
-        response = np.append(-np.expm1(-np.arange(n) / time_constant_samples), 0.0)
-        x = response[np.where(lag >= 0, lag, -1)]
+        response = -np.expm1(-np.arange(n) / time_constant_samples)
     else:
-        x = (lag >= 0).astype(float)
+        response = np.ones(n)
+    # one row per candidate: the response shifted to start at the candidate, read as a
+    # window of [n zeros, response] (rows are contiguous, so the filters run along them)
+    padded = np.concatenate([np.zeros(n), response])
+    x = np.lib.stride_tricks.sliding_window_view(padded, n)[n - candidates]
     q, _ = np.linalg.qr(J / np.maximum(np.linalg.norm(J, axis=0), 1e-300))
-    x_orthogonal = x - q @ (q.T @ x)
-    energy = np.einsum("ij,ij->j", x_orthogonal, x_orthogonal)
-    ok = energy > 1e-9 * np.einsum("ij,ij->j", x, x)
+    x_orthogonal = x - (x @ q) @ q.T
+    energy = np.einsum("ij,ij->i", x_orthogonal, x_orthogonal)
+    ok = energy > 1e-9 * np.einsum("ij,ij->i", x, x)
     if not ok.any():
         return None
-    score = x_orthogonal.T @ r
+    score = x_orthogonal @ r
     variance = white_sd**2 * energy
     if correlated_sd > 0 and correlation_samples > 0:
         a = math.exp(-1.0 / correlation_samples)
-        correlated = _ar1_times(x_orthogonal, a, axis=0)
-        variance = variance + correlated_sd**2 * np.einsum("ij,ij->j", x_orthogonal, correlated)
+        correlated = _ar1_times(x_orthogonal, a, axis=1)
+        variance = variance + correlated_sd**2 * np.einsum("ij,ij->i", x_orthogonal, correlated)
     ok &= variance > 0
     t_statistic = np.where(ok, np.abs(score) / np.sqrt(np.where(ok, variance, 1.0)), 0.0)
     best = int(np.argmax(t_statistic))
-    size = float(score[best] / energy[best]) * float(x[-1, best])
+    size = float(score[best] / energy[best]) * float(x[best, -1])
     return LoadChange(int(candidates[best]), size, float(t_statistic[best]))
 
 

@@ -249,6 +249,67 @@ def _q_times(z: np.ndarray, a: float) -> np.ndarray:
     return out
 
 
+
+def _share_likelihood_terms(
+    z: np.ndarray, a: float, shares: tuple[float, ...]
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray | None]:
+    """``z' H^-1 z`` and ``log det H`` for ``H = (1 - w) I + w R`` at every share ``w``.
+
+    Parameters
+    ----------
+    z : ndarray, shape (n, m)
+        Columns to form the quadratic forms of.
+    a : float
+        Lag-one coefficient of the correlated part (``R[i, j] = a^|i-j|``).
+    shares : tuple of float
+        Shares ``w`` of the correlated part.
+
+    Returns
+    -------
+    grams : ndarray, shape (k, m, m)
+        For the shares whose factorisation succeeded (``k`` of them).
+    log_dets : ndarray, shape (k,)
+    solved : ndarray of bool, shape (len(shares),)
+    correlated : ndarray, shape (m, m), or None
+        ``z' R z``, from one more block ``Q`` solved beside them (``R z = (1 - a^2) Q^-1 z``);
+        None when its factorisation failed.
+
+    Notes
+    -----
+    ``H = R B / (1 - a^2)`` with ``B = (1 - w) Q + (1 - a^2) w I`` tridiagonal and
+    ``Q = (1 - a^2) R^-1``, so ``H^-1 z = B^-1 Q z`` and
+    ``log det H = log det B - log(1 - a^2)``. The ``B`` of all shares are stacked into one
+    block-diagonal tridiagonal matrix (zero coupling between blocks) and factorised in one
+    LDL' call (LAPACK ``dpttrf``/``dpttrs``); a zero coupling leaves each block's factors
+    exactly as a factorisation of its own gives them.
+    """
+    n, m = z.shape
+    w = np.append(np.asarray(shares, dtype=float), 0.0)  # the last block: Q itself
+    k = w.size
+    a2 = a * a
+    diagonal = np.empty((k, n))
+    diagonal[:] = ((1.0 - w) * (1.0 + a2) + (1.0 - a2) * w)[:, None]
+    diagonal[:, 0] = diagonal[:, -1] = (1.0 - w) + (1.0 - a2) * w
+    off_diagonal = np.zeros((k, n))
+    off_diagonal[:, :-1] = (-(1.0 - w) * a)[:, None]
+    factor_d, factor_e, info = lapack.dpttrf(diagonal.ravel(), off_diagonal.ravel()[:-1])
+    if info == 0:
+        rhs = np.asfortranarray(np.vstack([np.tile(_q_times(z.copy(), a), (k - 1, 1)), z]))
+        solution, info = lapack.dpttrs(factor_d, factor_e, rhs)
+    if info != 0:  # some block is not positive definite: one share at a time
+        if len(shares) == 1:
+            return np.empty((0, m, m)), np.empty(0), np.zeros(1, dtype=bool), None
+        parts = [_share_likelihood_terms(z, a, (share,)) for share in shares]
+        return (
+            np.concatenate([part[0] for part in parts]),
+            np.concatenate([part[1] for part in parts]),
+            np.concatenate([part[2] for part in parts]),
+            None,
+        )
+    grams = z.T @ solution.reshape(k, n, m)
+    log_dets = np.log(factor_d).reshape(k, n).sum(axis=1) - math.log1p(-a2)
+    return grams[:-1], log_dets[:-1], np.ones(k - 1, dtype=bool), (1.0 - a2) * grams[-1]
+
 def disturbance_covariance(jacobian: np.ndarray, residuals: np.ndarray) -> DisturbanceCovariance:
     """Covariance of output-error estimates with a slow disturbance modelled, not assumed away.
 
@@ -304,41 +365,37 @@ def disturbance_covariance(jacobian: np.ndarray, residuals: np.ndarray) -> Distu
         return DisturbanceCovariance(
             0.5 * (cov + cov.T), np.full(p, t_quantile(white_dof)), 0.0, math.sqrt(s2), 0.0, 0.0
         )
-    z = np.asfortranarray(np.column_stack([rows.T, r]))
+    z = np.column_stack([rows.T, r])
     correlations = np.geomspace(1.0, 10.0 * n, CORRELATION_TIME_POINTS)
-    grams, log_dets, grid = [], [], []  # grid: (prior weight, a, w, correlation index)
+    poles = np.exp(-1.0 / correlations)
+    grams_parts, log_det_parts, grid = [], [], []  # grid: (prior weight, a, w, correlation index)
     correlated = []
-    for j, c in enumerate(correlations):
-        a = math.exp(-1.0 / c)
-        qz = np.asfortranarray(_q_times(z, a))
-        correlated.append(bread @ (rows @ _ar1_times(rows, a, axis=1).T) @ bread)
+    for j, a in enumerate(poles.tolist()):
         shares = ((0.0,) if j == 0 else ()) + CORRELATED_SHARES
-        off_diagonal = np.empty(n - 1)
-        diagonal = np.empty(n)
-        for w in shares:
-            # H = (1 - w) I + w R = R B / (1 - a^2) with B = (1 - w) Q + (1 - a^2) w I
-            diagonal.fill((1.0 - w) * (1.0 + a * a) + (1.0 - a * a) * w)
-            diagonal[0] = diagonal[-1] = (1.0 - w) + (1.0 - a * a) * w
-            off_diagonal.fill(-(1.0 - w) * a)
-            factor_d, factor_e, info = lapack.dpttrf(diagonal, off_diagonal)
-            if info != 0:
-                continue
-            h_inv_z, info = lapack.dpttrs(factor_d, factor_e, qz)
-            if info != 0:
-                continue
-            grams.append(z.T @ h_inv_z)
-            log_dets.append(float(np.sum(np.log(factor_d))) - math.log1p(-a * a))
-            # prior uniform over w: the white model stands for every correlation time
-            grid.append((float(CORRELATION_TIME_POINTS) if w == 0.0 else 1.0, a, w, j))
+        grams_j, log_dets_j, solved, meat = _share_likelihood_terms(z, a, shares)
+        if meat is None:
+            meat_matrix = rows @ _ar1_times(rows, a, axis=1).T
+        else:
+            meat_matrix = meat[:p, :p]
+        correlated.append(bread @ meat_matrix @ bread)
+        grams_parts.append(grams_j)
+        log_det_parts.append(log_dets_j)
+        # prior uniform over w: the white model stands for every correlation time
+        grid += [
+            (float(CORRELATION_TIME_POINTS) if w == 0.0 else 1.0, a, w, j)
+            for w, ok in zip(shares, solved)
+            if ok
+        ]
+    grams, log_dets = np.concatenate(grams_parts), np.concatenate(log_det_parts)
     if not grid:
         return sandwich_covariance_result(J, r)
-    g = np.array(grams)
+    g = grams
     sign, log_det_a = np.linalg.slogdet(g[:, :p, :p])
     solved = np.linalg.solve(g[:, :p, :p], g[:, :p, p:])[:, :, 0]
     quadratic = g[:, p, p] - np.einsum("ki,ki->k", g[:, :p, p], solved)
     usable = (sign > 0) & (quadratic > 0)
     s2_all = np.where(usable, quadratic, 1.0) / white_dof
-    loglik_all = -0.5 * (np.array(log_dets) + log_det_a - logdet_gram + white_dof * np.log(s2_all))
+    loglik_all = -0.5 * (log_dets + log_det_a - logdet_gram + white_dof * np.log(s2_all))
     if not usable.any():
         return sandwich_covariance_result(J, r)
     prior, a_k, w_k, j_k = (np.array(column)[usable] for column in zip(*grid))
