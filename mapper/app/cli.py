@@ -15,15 +15,17 @@ import os
 import sys
 from enum import StrEnum
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import typer
 from typer.core import TyperArgument, TyperCommand
 
 from mapper.app import views
-from mapper.app.session import Session, parameter_units
 from mapper.errors import MapperError, UsageError
 from mapper.presentation.output import format_object, format_records, plain
+
+if TYPE_CHECKING:
+    from mapper.app.session import Session
 
 BROKEN_PIPE_STATUS = 128 + 13  # killed by SIGPIPE, as the shell reports it (common practice)
 
@@ -141,6 +143,7 @@ def _guard(function):
 
 
 def _session(*, write: bool = False, create: bool = False) -> Session:
+    from mapper.app.session import Session  # loads pandas and the analysis: not needed for --help
     return Session(_state["db"], write=write, create=create)
 
 
@@ -522,7 +525,7 @@ def main() -> None:
         sys.exit(BROKEN_PIPE_STATUS)
 
 
-__all__ = ["app", "main", "parameter_units"]
+__all__ = ["app", "main"]
 
 
 if __name__ == "__main__":

@@ -10,15 +10,17 @@ import getpass
 import os
 from collections.abc import Sequence
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from mapper.app.session import Session, parameter_units
 from mapper.errors import NotFoundError, UsageError
 from mapper.identification.flags import INFORMS, REJECTS, effect, flag_text
 from mapper.presentation.textplot import sparkline_rows
 from mapper.store.campaign import Campaign
+
+if TYPE_CHECKING:
+    from mapper.app.session import Session
 
 _USER_VARIABLES = ("MAPPER_USER", "USER", "LOGNAME", "USERNAME")
 
@@ -196,5 +198,5 @@ def params_json_rows(rows: list[dict], units: dict[str, str]) -> list[dict]:
     return [dict(row, units=units) for row in rows]
 
 
-__all__ = ["campaign_rows", "grade_reason", "params_json_rows", "parameter_units", "show_test",
+__all__ = ["campaign_rows", "grade_reason", "params_json_rows", "show_test",
            "unit_keys", "unit_title", "user_name", "with_loose_details", "with_unit_names"]
