@@ -129,7 +129,7 @@ def sandwich_covariance(
     r = np.asarray(residuals, dtype=float)
     n, p = J.shape
     phi = residual_autocorrelation(r, p)
-    rows = np.ascontiguousarray(J.T)  # one row per parameter: the filters run along rows
+    rows = np.array(J.T, order="C")  # a copy (the caller's Jacobian stays); one row per parameter
     # scale rows for conditioning
     scale = np.sqrt(np.einsum("ij,ij->i", rows, rows))
     scale[scale == 0] = 1.0
@@ -357,7 +357,7 @@ def disturbance_covariance(jacobian: np.ndarray, residuals: np.ndarray) -> Distu
     J = np.asarray(jacobian, dtype=float)
     r = np.asarray(residuals, dtype=float)
     n, p = J.shape
-    rows = np.ascontiguousarray(J.T)
+    rows = np.array(J.T, order="C")  # a copy: the caller's Jacobian stays as given
     scale = np.sqrt(np.einsum("ij,ij->i", rows, rows))
     scale[scale == 0] = 1.0
     rows /= scale[:, None]
