@@ -151,3 +151,13 @@ def test_stacked_grid_solve_matches_dense_algebra(with_correlated):
         np.testing.assert_allclose(correlated, z.T @ R @ z, rtol=1e-9)
     else:
         assert correlated is None
+
+
+def test_covariance_leaves_the_callers_jacobian_alone():
+    """A Fortran-ordered Jacobian (as the fits return it) is not rescaled in place."""
+    rng = np.random.default_rng(3)
+    jacobian = np.asfortranarray(rng.normal(size=(80, 3)))
+    jacobian[:, 0] = 1.0
+    given = jacobian.copy()
+    disturbance_covariance(jacobian, rng.normal(size=80))
+    assert np.array_equal(jacobian, given)
