@@ -208,7 +208,7 @@ FAULTS: tuple[Fault, ...] = (
           _parquet(lambda: clean_frame().rename(columns={"valve_pct": "valve"})),
           ("'valve_pct' not found", "valve"), "bad.parquet"),
     Fault("parquet without rows", "parquet", _parquet(lambda: clean_frame().iloc[:0]),
-          ("no readable data rows",), "bad.parquet"),
+          ("no data rows",), "bad.parquet"),
     # -- campaign file --------------------------------------------------------------------
     Fault("campaign file not UTF-8", "campaign", _campaign(_entry().encode() + b'note = "\xe9t\xe9"\n'),
           ("not UTF-8",), "campaign.toml"),

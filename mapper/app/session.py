@@ -217,17 +217,16 @@ class Session:
             raise MapperError(f"cannot map against '{against}'", hint="use level or input")
         data = self.fitted_data(name)
 
-        def build() -> OperatingMap:
-            rows = data.included.copy()
-            if against == "input":
-                levels = self._cached(("input_levels",), self.store.input_levels)
-                rows["input_level"] = [levels.get(int(i), np.nan) for i in rows["test_id"]]
-            return build_map(rows, against=AGAINST[against])
-        opmap = self._cached(("map", data.name, against), build)
+        rows = data.included
+        if against == "input":
+            rows = rows.copy()
+            levels = self._cached(("input_levels",), self.store.input_levels)
+            rows["input_level"] = [levels.get(int(i), np.nan) for i in rows["test_id"]]
+        opmap = self._cached(("map", data.name, against), lambda: build_map(rows, against=AGAINST[against]))
         if not influence:
             return data, opmap
         return data, self._cached(("map+influence", data.name, against),
-                                  lambda: with_influence(opmap, data.included))
+                                  lambda: with_influence(opmap, rows))
 
     def verdict(self, name: str | None = None, *, ms_max: float = 2.0, slowdown_max: float = 2.0,
                 closed_loop_time: float | None = None, rule: str = "simc") -> tuple[CampaignData, Verdict]:
