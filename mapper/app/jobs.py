@@ -20,6 +20,7 @@ import pandas as pd
 from mapper.analysis.opmap import OperatingMap
 from mapper.analysis.verdict import Verdict
 from mapper.app.session import AGAINST, CampaignData, Session, campaign_data
+from mapper.app.session import finite_or_none as _finite
 from mapper.errors import NotFoundError
 from mapper.identification.identify import FitResult
 from mapper.store.database import Store
@@ -34,13 +35,6 @@ SAFETY_NOTE = ("Step tests and new tuning can hurt people and equipment: agree l
 
 Progress = Callable[[int, int, str], None]
 
-
-def _finite(value) -> float | None:
-    try:
-        value = float(value)
-    except (TypeError, ValueError):
-        return None
-    return value if np.isfinite(value) else None
 
 
 @contextmanager

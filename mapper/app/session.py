@@ -27,7 +27,8 @@ from mapper.store.database import SCHEMA_VERSION, Store
 AGAINST = {"level": "level", "input": "input_level"}
 
 
-def _finite(value) -> float | None:
+def finite_or_none(value) -> float | None:
+    """``value`` as a float, or None when it is missing, not a number or not finite."""
     try:
         value = float(value)
     except (TypeError, ValueError):
@@ -85,7 +86,7 @@ def campaign_data(store: Store, info: dict) -> CampaignData:
     units = {"input": info.get("input_unit") or "", "output": info.get("output_unit") or ""}
     ranges = {}
     for side in ("input", "output"):
-        low, high = _finite(info.get(f"{side}_range_low")), _finite(info.get(f"{side}_range_high"))
+        low, high = finite_or_none(info.get(f"{side}_range_low")), finite_or_none(info.get(f"{side}_range_high"))
         if low is not None and high is not None:
             ranges[side] = [low, high]
     description = info.get("description") or ""

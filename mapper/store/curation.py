@@ -115,6 +115,18 @@ def with_curation(con: duckdb.DuckDBPyConnection, frame: pd.DataFrame) -> pd.Dat
     return frame
 
 
+@contextmanager
+def transaction(con: duckdb.DuckDBPyConnection) -> Iterator[duckdb.DuckDBPyConnection]:
+    """All statements inside are committed together or not at all (the store's one transaction rule)."""
+    con.execute("BEGIN TRANSACTION")
+    try:
+        yield con
+    except BaseException:
+        con.execute("ROLLBACK")
+        raise
+    con.execute("COMMIT")
+
+
 class Curation:
     """Exclusions, notes and test windows of an open store (``Curation(store.connection)``)."""
 
@@ -127,13 +139,8 @@ class Curation:
         if not has_curation_tables(con):
             raise StoreError("the store has no tables for exclusions and notes",
                              hint="open it for writing (the tables are added then)")
-        con.execute("BEGIN TRANSACTION")
-        try:
+        with transaction(con):
             yield con
-        except BaseException:
-            con.execute("ROLLBACK")
-            raise
-        con.execute("COMMIT")
 
     def exclude_tests(self, test_ids: Sequence[int], *, reason: str, by: str) -> None:
         """Leave tests out of map, comparisons and verdict, recording why, who and when (UTC).

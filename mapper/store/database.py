@@ -26,7 +26,7 @@ if TYPE_CHECKING:  # pandas and pyarrow load on first use: `mapper params` start
 from mapper import __version__
 from mapper.columns import FIT_LIST_COLUMNS, FIT_VALUE_COLUMNS
 from mapper.errors import NotAStoreError, NotFoundError, StoreError, StoreInUseError
-from mapper.store.curation import CURATION_SCHEMA, upgrade, with_curation
+from mapper.store.curation import CURATION_SCHEMA, transaction, upgrade, with_curation
 from mapper.store.schema import (
     ADDED_COLUMNS,
     SCHEMA,
@@ -208,14 +208,8 @@ class Store:
     @contextmanager
     def transaction(self) -> Iterator[duckdb.DuckDBPyConnection]:
         """All statements inside are committed together or not at all."""
-        con = self.connection
-        con.execute("BEGIN TRANSACTION")
-        try:
+        with transaction(self.connection) as con:
             yield con
-        except BaseException:
-            con.execute("ROLLBACK")
-            raise
-        con.execute("COMMIT")
 
     # -- campaigns and tests ------------------------------------------------------------
     def ensure_campaign(self, con, campaign) -> int:
