@@ -14,9 +14,9 @@ from scipy.integrate import solve_ivp
 from scipy.signal import lfilter
 
 from mapper.errors import DataError, IdentificationError
-from mapper.identification.estimators import two_point_coefficients
 from mapper.identification.identify import ESTIMATORS, FitResult, identify
 from mapper.identification.models import simulate_fopdt, simulate_integrating, step_response
+from mapper.identification.point_methods import two_point_coefficients
 from mapper.identification.uncertainty import cramer_rao_sd, t_quantile
 
 ROW_KEYS = {

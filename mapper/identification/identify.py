@@ -4,7 +4,8 @@
 least squares), chooses between a first-order-plus-dead-time (FOPDT) and an
 integrating model, attaches 95 % intervals and judges the test. It never raises for
 bad data: a test that cannot give a model comes back ``rejected`` with flags.
-The estimators live in :mod:`mapper.identification.estimators`, the uncertainty in
+The estimators live in :mod:`mapper.identification.point_methods` and
+:mod:`mapper.identification.least_squares`, the uncertainty in
 :mod:`mapper.identification.uncertainty`, the checks in :mod:`mapper.identification.quality`.
 """
 
@@ -20,7 +21,7 @@ import numpy as np
 from mapper.columns import FIT_VALUE_NAMES, column
 from mapper.constants import MIN_AFTER_STEP_SAMPLES, MIN_BASELINE_SAMPLES, MIN_FIT_SAMPLES
 from mapper.errors import DataError, IdentificationError
-from mapper.identification import estimators as est
+from mapper.identification import point_methods as est
 from mapper.identification.disturbance import disturbance_flags
 from mapper.identification.flags import flag_text, grade
 from mapper.identification.models import simulate_fopdt, simulate_integrating

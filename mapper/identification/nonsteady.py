@@ -20,13 +20,9 @@ import math
 import numpy as np
 
 from mapper.constants import MIN_RESPONSE_SAMPLES
-from mapper.identification.estimators import (
-    TAU_MAX_POST_RECORDS,
-    TAU_MIN_SAMPLES,
-    Estimate,
-    LeastSquaresFit,
-)
+from mapper.identification.least_squares import TAU_MAX_POST_RECORDS, TAU_MIN_SAMPLES, LeastSquaresFit
 from mapper.identification.models import split_dead_time, unit_response_rows
+from mapper.identification.point_methods import Estimate
 
 __all__ = ["least_squares_fopdt_from_state", "least_squares_integrating_from_state"]
 

@@ -19,11 +19,12 @@ from dataclasses import dataclass
 import numpy as np
 
 from mapper.constants import DRIFT_FRACTION, MIN_BASELINE_SAMPLES
-from mapper.identification import estimators as est
+from mapper.identification import least_squares as est
 from mapper.identification.nonsteady import (
     least_squares_fopdt_from_state,
     least_squares_integrating_from_state,
 )
+from mapper.identification.point_methods import Estimate
 from mapper.identification.quality import StepInfo
 from mapper.identification.uncertainty import residual_autocorrelation
 
@@ -92,7 +93,7 @@ def choose_least_squares(
     y: np.ndarray,
     history: int,
     step: StepInfo,
-    start: est.Estimate,
+    start: Estimate,
     period: float,
     start_state: bool = True,
 ) -> Choice | None:
