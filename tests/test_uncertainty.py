@@ -18,8 +18,7 @@ from mapper.identification.identify import identify
 from mapper.identification.models import simulate_fopdt
 from mapper.identification.uncertainty import (
     _ar1_times,
-    _q_times,
-    _share_likelihood_terms,
+    _grid_likelihood_terms,
     disturbance_covariance,
 )
 
@@ -62,13 +61,11 @@ def test_intervals_cover_the_truth_under_slow_wander(kind, seed):
     assert not any("load_change" in r.flags for r in results)
 
 
-def test_tridiagonal_form_matches_the_inverse_ar1_correlation_matrix():
-    # Textbook identity (e.g. Box & Jenkins 1970): R[i, j] = a^|i-j| has a tridiagonal
-    # inverse, (1 - a^2) R^-1 = Q with 1, 1 + a^2, ..., 1 on the diagonal and -a beside it.
+def test_ar1_product_matches_the_correlation_matrix():
+    # R[i, j] = a^|i-j|, the AR(1) correlation matrix (e.g. Box & Jenkins 1970), built densely
     a, n = 0.83, 12
     R = a ** np.abs(np.subtract.outer(np.arange(n), np.arange(n)))
     x = np.random.default_rng(0).normal(size=(n, 3))
-    assert np.allclose(_q_times(x, a), (1 - a * a) * np.linalg.solve(R, x))
     assert np.allclose(_ar1_times(x, a, axis=0), R @ x)
 
 
@@ -130,27 +127,30 @@ def test_disturbance_flags_are_registered_with_text_and_effect():
         assert FLAGS[name].effect == "suspect" and FLAGS[name].text.endswith(".")
 
 
-@pytest.mark.parametrize("with_correlated", [True, False])
-def test_stacked_grid_solve_matches_dense_algebra(with_correlated):
-    """The stacked tridiagonal solve gives z'H^-1 z, log det H and z'Rz of dense linear algebra.
+@pytest.mark.parametrize("n", [60, 601])
+def test_grid_terms_match_dense_algebra(n):
+    """The sine-basis grid terms give z'H^-1 z, log det H and z'Rz of dense linear algebra.
 
     Reference: numpy's dense solve and slogdet on ``H = (1 - w) I + w R``,
-    ``R[i, j] = a^|i-j|`` built entry by entry.
+    ``R[i, j] = a^|i-j|`` built entry by entry, for short and very long correlation
+    times (the poles span 1 sample to 10 records, as the covariance uses them; 601 + 1 is
+    twice a prime, the slow path of the sine transform).
     """
     rng = np.random.default_rng(7)
-    n, a, shares = 60, 0.93, (0.0, 0.1, 0.6, 1.0)
+    shares = (0.0, 0.02, 0.6, 0.98, 1.0)
+    poles = np.exp(-1.0 / np.geomspace(1.0, 10.0 * n, 4))
     z = rng.normal(size=(n, 4))
-    grams, log_dets, solved, correlated = _share_likelihood_terms(z, a, shares, with_correlated)
-    R = a ** np.abs(np.subtract.outer(np.arange(n), np.arange(n)))
-    assert solved.all() and grams.shape == (len(shares), 4, 4)
-    for k, w in enumerate(shares):
-        H = (1.0 - w) * np.eye(n) + w * R
-        np.testing.assert_allclose(grams[k], z.T @ np.linalg.solve(H, z), rtol=1e-9, atol=1e-9)
-        assert log_dets[k] == pytest.approx(np.linalg.slogdet(H)[1], abs=1e-9)
-    if with_correlated:
-        np.testing.assert_allclose(correlated, z.T @ R @ z, rtol=1e-9)
-    else:
-        assert correlated is None
+    grams, log_dets, correlated = _grid_likelihood_terms(z, poles, shares)
+    assert grams.shape == (4, len(shares), 4, 4) and correlated.shape == (4, 4, 4)
+    lags = np.abs(np.subtract.outer(np.arange(n), np.arange(n)))
+    for j, a in enumerate(poles):
+        R = a**lags
+        for k, w in enumerate(shares):
+            H = (1.0 - w) * np.eye(n) + w * R
+            expected = z.T @ np.linalg.solve(H, z)
+            np.testing.assert_allclose(grams[j, k], expected, rtol=1e-8, atol=1e-8 * np.abs(expected).max())
+            assert log_dets[j, k] == pytest.approx(np.linalg.slogdet(H)[1], abs=1e-8)
+        np.testing.assert_allclose(correlated[j], z.T @ R @ z, rtol=1e-8, atol=1e-8 * np.abs(z.T @ R @ z).max())
 
 
 def test_covariance_leaves_the_callers_jacobian_alone():

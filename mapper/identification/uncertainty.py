@@ -12,7 +12,7 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.linalg import lapack
+from scipy import fft as sp_fft
 
 from mapper.constants import Z95
 from mapper.identification.models import first_order_filter, fopdt_sensitivities
@@ -236,85 +236,83 @@ class DisturbanceCovariance:
     correlation_samples: float
 
 
-def _q_times(z: np.ndarray, a: float) -> np.ndarray:
-    """``Q @ z`` (along axis 0) for ``Q = (1 - a^2) R^-1``, R the AR(1) correlation matrix.
-
-    Q is tridiagonal: ``1, 1 + a^2, ..., 1 + a^2, 1`` on the diagonal and ``-a`` beside it.
-    """
-    out = (1.0 + a * a) * z
-    out[0] = z[0]
-    out[-1] = z[-1]
-    out[1:] -= a * z[:-1]
-    out[:-1] -= a * z[1:]
-    return out
-
-
-
-def _share_likelihood_terms(
-    z: np.ndarray, a: float, shares: tuple[float, ...], with_correlated: bool = True
-) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray | None]:
-    """``z' H^-1 z`` and ``log det H`` for ``H = (1 - w) I + w R`` at every share ``w``.
+def _grid_likelihood_terms(
+    z: np.ndarray, poles: np.ndarray, shares: tuple[float, ...]
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """``z' H^-1 z`` and ``log det H`` for ``H = (1 - w) I + w R`` over a grid, and ``z' R z``.
 
     Parameters
     ----------
     z : ndarray, shape (n, m)
         Columns to form the quadratic forms of.
-    a : float
-        Lag-one coefficient of the correlated part (``R[i, j] = a^|i-j|``).
+    poles : ndarray, shape (J,)
+        Lag-one coefficients ``a`` of the correlated part (``R[i, j] = a^|i-j|``), each in
+        (0, 1).
     shares : tuple of float
-        Shares ``w`` of the correlated part.
+        Shares ``w`` of the correlated part, each in [0, 1], used with every pole.
 
     Returns
     -------
-    grams : ndarray, shape (k, m, m)
-        For the shares whose factorisation succeeded (``k`` of them).
-    log_dets : ndarray, shape (k,)
-    solved : ndarray of bool, shape (len(shares),)
-    correlated : ndarray, shape (m, m), or None
-        ``z' R z``, from one more block ``Q`` solved beside them (``R z = (1 - a^2) Q^-1 z``);
-        None when ``with_correlated`` is False or the stacked factorisation failed (then
-        every share is solved on its own, as a block of its own would be).
+    grams : ndarray, shape (J, S, m, m)
+        ``z' H^-1 z`` for every pole and share.
+    log_dets : ndarray, shape (J, S)
+        ``log det H``; NaN where the rank-two correction (below) is not positive.
+    correlated : ndarray, shape (J, m, m)
+        ``z' R z`` for every pole.
 
     Notes
     -----
-    ``H = R B / (1 - a^2)`` with ``B = (1 - w) Q + (1 - a^2) w I`` tridiagonal and
-    ``Q = (1 - a^2) R^-1``, so ``H^-1 z = B^-1 Q z`` and
-    ``log det H = log det B - log(1 - a^2)``. The ``B`` of all shares are stacked into one
-    block-diagonal tridiagonal matrix (zero coupling between blocks) and factorised in one
-    LDL' call (LAPACK ``dpttrf``/``dpttrs``); a zero coupling leaves each block's factors
-    exactly as a factorisation of its own gives them.
+    ``H = R B / (1 - a^2)`` with ``B = (1 - w) Q + (1 - a^2) w I`` and
+    ``Q = (1 - a^2) R^-1`` tridiagonal, so ``H^-1 z = B^-1 Q z`` and
+    ``log det H = log det B - log(1 - a^2)``. ``Q`` is the tridiagonal Toeplitz matrix
+    ``(1 + a^2, -a)`` less ``a^2`` in its two corners; the Toeplitz part is diagonal in the
+    orthonormal sine basis (type-I discrete sine transform; eigenvalues
+    ``1 + a^2 - 2 a cos(pi k / (n + 1))``, a textbook result for tridiagonal Toeplitz
+    matrices), and the corners are a rank-two correction taken by the Woodbury identity
+    and the matrix determinant lemma. One transform of ``z`` then serves every grid point:
+    each costs weighted sums over ``n`` instead of a factorisation. ``z' R z`` is
+    ``(1 - a^2) z' Q^-1 z``, the ``w = 0`` case of the same algebra.
     """
     n, m = z.shape
+    poles = np.asarray(poles, dtype=float)
     w = np.asarray(shares, dtype=float)
-    if with_correlated:
-        w = np.append(w, 0.0)  # the last block: Q itself
-    k = w.size
+    J, S = poles.size, w.size
+    theta = np.pi * np.arange(1, n + 1) / (n + 1)
+    basis = np.empty((n, m + 2))
+    basis[:, :m] = sp_fft.dst(z, type=1, axis=0, norm="ortho")
+    edge = math.sqrt(2.0 / (n + 1)) * np.sin(theta)
+    basis[:, m] = edge  # the first unit vector in the sine basis
+    basis[:, m + 1] = edge * np.where(np.arange(n) % 2, -1.0, 1.0)  # the last one
+    a = poles[:, None]
     a2 = a * a
-    diagonal = np.empty((k, n))
-    diagonal[:] = ((1.0 - w) * (1.0 + a2) + (1.0 - a2) * w)[:, None]
-    diagonal[:, 0] = diagonal[:, -1] = (1.0 - w) + (1.0 - a2) * w
-    off_diagonal = np.zeros((k, n))
-    off_diagonal[:, :-1] = (-(1.0 - w) * a)[:, None]
-    factor_d, factor_e, info = lapack.dpttrf(diagonal.ravel(), off_diagonal.ravel()[:-1])
-    if info == 0:
-        rhs = np.tile(_q_times(z.copy(), a), (len(shares), 1))
-        rhs = np.asfortranarray(np.vstack([rhs, z]) if with_correlated else rhs)
-        solution, info = lapack.dpttrs(factor_d, factor_e, rhs)
-    if info != 0:  # some block is not positive definite: one share at a time
-        if k == 1:
-            return np.empty((0, m, m)), np.empty(0), np.zeros(1, dtype=bool), None
-        parts = [_share_likelihood_terms(z, a, (share,), False) for share in shares]
-        return (
-            np.concatenate([part[0] for part in parts]),
-            np.concatenate([part[1] for part in parts]),
-            np.concatenate([part[2] for part in parts]),
-            None,
-        )
-    grams = z.T @ solution.reshape(k, n, m)
-    log_dets = np.log(factor_d).reshape(k, n).sum(axis=1) - math.log1p(-a2)
-    if not with_correlated:
-        return grams, log_dets, np.ones(k, dtype=bool), None
-    return grams[:-1], log_dets[:-1], np.ones(k - 1, dtype=bool), (1.0 - a2) * grams[-1]
+    mu = 1.0 + a2 - 2.0 * a * np.cos(theta)[None, :]  # (J, n) eigenvalues of the Toeplitz part
+    lam = (1.0 - w)[None, :, None] * mu[:, None, :] + ((1.0 - a2) * w[None, :])[:, :, None]  # (J, S, n)
+    inverse = 1.0 / lam
+    weights = np.concatenate([inverse, mu[:, None, :] * inverse, 1.0 / mu[:, None, :]], axis=1)
+    rows, cols = np.triu_indices(m + 2)
+    sums = weights.reshape(-1, n) @ (basis[:, rows] * basis[:, cols])
+    full = np.empty((sums.shape[0], m + 2, m + 2))
+    full[:, rows, cols] = sums
+    full[:, cols, rows] = sums
+    full = full.reshape(J, 2 * S + 1, m + 2, m + 2)
+    plain, scaled, at_rest = full[:, :S], full[:, S:2 * S], full[:, 2 * S]
+    P, C = plain[..., :m, m:], plain[..., m:, m:]  # z' L^-1 e and e' L^-1 e
+    gamma = (1.0 - w)[None, :] * a2  # (J, S): weight of the corner correction
+    N = np.eye(2) - gamma[..., None, None] * C
+    ends = z[[0, -1], :]  # e' z
+    a2_ = a2[:, :, None, None]
+    # z' B^-1 Q z, with Q z = (Toeplitz part) z - a^2 e e' z
+    right = np.swapaxes(scaled[..., :m, m:], -1, -2) - a2_ * (C @ ends)
+    grams = scaled[..., :m, :m] - a2_ * (P @ ends) + gamma[..., None, None] * (P @ np.linalg.solve(N, right))
+    det_n = N[..., 0, 0] * N[..., 1, 1] - N[..., 0, 1] * N[..., 1, 0]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        log_dets = np.log(lam).sum(axis=-1) + np.log(det_n) - np.log1p(-a2)
+    # z' Q^-1 z at rest (w = 0, so L = the Toeplitz eigenvalues and the correction is a^2)
+    P0, C0 = at_rest[:, :m, m:], at_rest[:, m:, m:]
+    N0 = np.eye(2) - a2[:, :, None] * C0
+    inverse_q = at_rest[:, :m, :m] + a2[:, :, None] * (P0 @ np.linalg.solve(N0, np.swapaxes(P0, -1, -2)))
+    correlated = (1.0 - a2)[:, :, None] * inverse_q
+    return grams, log_dets, correlated
 
 
 def disturbance_covariance(jacobian: np.ndarray, residuals: np.ndarray) -> DisturbanceCovariance:
@@ -375,34 +373,28 @@ def disturbance_covariance(jacobian: np.ndarray, residuals: np.ndarray) -> Distu
     z = np.column_stack([rows.T, r])
     correlations = np.geomspace(1.0, 10.0 * n, CORRELATION_TIME_POINTS)
     poles = np.exp(-1.0 / correlations)
-    grams_parts, log_det_parts, grid = [], [], []  # grid: (prior weight, a, w, correlation index)
-    correlated = []
-    for j, a in enumerate(poles.tolist()):
-        shares = ((0.0,) if j == 0 else ()) + CORRELATED_SHARES
-        grams_j, log_dets_j, solved, meat = _share_likelihood_terms(z, a, shares)
-        if meat is None:
-            meat_matrix = rows @ _ar1_times(rows, a, axis=1).T
-        else:
-            meat_matrix = meat[:p, :p]
-        correlated.append(bread @ meat_matrix @ bread)
-        grams_parts.append(grams_j)
-        log_det_parts.append(log_dets_j)
-        # prior uniform over w: the white model stands for every correlation time
-        grid += [
-            (float(CORRELATION_TIME_POINTS) if w == 0.0 else 1.0, a, w, j)
-            for w, ok in zip(shares, solved)
-            if ok
-        ]
-    grams, log_dets = np.concatenate(grams_parts), np.concatenate(log_det_parts)
-    if not grid:
+    shares = (0.0, *CORRELATED_SHARES)
+    grams_grid, log_dets_grid, correlated_grid = _grid_likelihood_terms(z, poles, shares)
+    # the white model (w = 0) is the same for every correlation time: keep it once, with
+    # the prior weight of them all (prior uniform over w)
+    keep = np.ones((poles.size, len(shares)), dtype=bool)
+    keep[1:, 0] = False
+    j_grid, k_grid = np.nonzero(keep)
+    share_grid = np.asarray(shares)[k_grid]
+    grid = [(float(CORRELATION_TIME_POINTS) if w == 0.0 else 1.0, float(poles[j]), float(w), int(j))
+            for j, w in zip(j_grid, share_grid)]
+    grams, log_dets = grams_grid[keep], log_dets_grid[keep]
+    correlated = [bread @ meat[:p, :p] @ bread for meat in correlated_grid]
+    finite = np.isfinite(log_dets) & np.all(np.isfinite(grams), axis=(1, 2))
+    if not finite.any():
         return sandwich_covariance_result(J, r)
-    g = grams
+    g = np.where(finite[:, None, None], grams, np.eye(p + 1))  # unusable ones are dropped below
     sign, log_det_a = np.linalg.slogdet(g[:, :p, :p])
     solved = np.linalg.solve(g[:, :p, :p], g[:, :p, p:])[:, :, 0]
     quadratic = g[:, p, p] - np.einsum("ki,ki->k", g[:, :p, p], solved)
-    usable = (sign > 0) & (quadratic > 0)
+    usable = finite & (sign > 0) & (quadratic > 0)
     s2_all = np.where(usable, quadratic, 1.0) / white_dof
-    loglik_all = -0.5 * (log_dets + log_det_a - logdet_gram + white_dof * np.log(s2_all))
+    loglik_all = -0.5 * (np.where(finite, log_dets, 0.0) + log_det_a - logdet_gram + white_dof * np.log(s2_all))
     if not usable.any():
         return sandwich_covariance_result(J, r)
     prior, a_k, w_k, j_k = (np.array(column)[usable] for column in zip(*grid))
