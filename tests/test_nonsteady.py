@@ -192,3 +192,49 @@ def test_whole_record_fit_and_the_test_of_nonlinearity():
     t, u, y, starts = _gridded(tank, times, levels, 1100.0, noise=0.02)
     nonlinear = fit_record(t, u, y, starts)
     assert nonlinear.differ, nonlinear.p_value
+
+
+def test_fitting_a_store_simulates_each_window_over_the_record_before_it(tmp_path):
+    """``mapper fit`` hands every window of a long log its preceding record.
+
+    The linear plant's record (moves 0.5-1.5 time constants apart, stored by exception) is
+    written as one file, imported, and fitted through the store. Each stored fit must be
+    the fit of its window with the store's own preceding record (the one-query reference,
+    ``Store.preceding_record``), and at least 90 % of the moves held 0.8 time constants or
+    more must come back within 5 % in gain and 10 % in time constant of the truth (issue 13).
+    """
+    from mapper.identification.fitting import fit_store
+    from mapper.store.database import Store
+    from mapper.store.ingest import import_sources
+
+    plant, base, size = PLANTS["linear"]
+    rng = np.random.default_rng(11)
+    times, levels, end = move_sequence(rng, plant, base, size, MOVES, first=150.0)
+    td, ud, yd = simulate(plant, times, levels, end)
+    sd = NOISE * abs(plant.local(base)[0] * size)
+    ts, us, ys = by_exception(td, ud, yd, sd, rng, dead_band=sd, max_interval=10.0, period=1.0)
+    path = tmp_path / "log.csv"
+    np.savetxt(path, np.column_stack([ts - ts[0], us, ys]), delimiter=",", header="time,valve,flow",
+               comments="", fmt="%.9g")
+    with Store(tmp_path / "s.duckdb") as store:
+        import_sources(store, [path], time_column="time", input_column="valve", output_column="flow",
+                       period=1.0, campaign="log")
+        summary = fit_store(store, workers=1)
+        ids = store.test_ids()
+        assert summary.fitted == len(ids) == MOVES
+        stored = store.params(campaign="log").set_index("test_id")
+        held, good = 0, 0
+        for i, test_id in enumerate(ids):
+            t, u, y = store.samples(test_id)
+            before_t, before_u, _ = store.preceding_record(test_id)
+            assert (before_t.size == 0) == (i == 0)
+            expected = identify(t, u, y, preceding=(before_t, before_u) if before_t.size else None)
+            row = stored.loc[test_id]
+            assert row["gain"] == pytest.approx(expected.gain, rel=1e-9)
+            assert row["time_constant"] == pytest.approx(expected.time_constant, rel=1e-9)
+            hold = (times[i + 1] if i + 1 < MOVES else end) - times[i]
+            gain, tau = plant.local(0.5 * (levels[i] + levels[i + 1]))
+            if hold >= 0.8 * tau:
+                held += 1
+                good += abs(row["gain"] / gain - 1) <= 0.05 and abs(row["time_constant"] / tau - 1) <= 0.10
+        assert held >= 5 and good >= 0.9 * held, (good, held)

@@ -21,6 +21,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from mapper.constants import MIN_BASELINE_SAMPLES
 from mapper.identification.identify import ESTIMATORS, identify
 from mapper.store.database import Store
 
@@ -93,8 +94,43 @@ def _pool_context():
     return None
 
 
+@dataclass
+class _PreviousWindow:
+    """The last window handed out, kept so the next window of the same file finds its
+    preceding record without another query (windows of a file have consecutive ids)."""
+
+    source_hash: str | None = None
+    window_index: int = -1
+    window_start: float = 0.0
+    period: float = 0.0
+    t: np.ndarray = field(default_factory=lambda: np.empty(0))
+    u: np.ndarray = field(default_factory=lambda: np.empty(0))
+
+
+def _preceding(store: Store, test_id: int, info: dict, previous: _PreviousWindow):
+    """Times (relative to this window's first sample) and input of the record before the
+    window, or None for a file's first window.
+
+    Only the tail the fit uses is needed (see ``identify``): the previous window serves
+    when it is long enough, otherwise the store is asked for the whole earlier record.
+    """
+    index = info.get("window_index")
+    if not index:  # a file's first (or only) window
+        return None
+    if previous.source_hash == info.get("source_hash") and previous.window_index == index - 1:
+        start = float(info.get("window_start") or 0.0)
+        t = previous.t + previous.window_start - start
+        keep = t < -0.25 * previous.period  # the shared plateau appears once
+        needed = max(int(info.get("move_start_index") or 0), 3 * MIN_BASELINE_SAMPLES)
+        if int(keep.sum()) >= needed:
+            return t[keep], previous.u[keep]
+    t, u, _ = store.preceding_record(test_id)
+    return (t, u) if t.size else None
+
+
 def _jobs(store: Store, test_ids: list[int], method: str) -> Iterator[tuple]:
     # read in batches: few queries, yet never the whole campaign in memory
+    previous = _PreviousWindow()
     for first in range(0, len(test_ids), BATCH):
         chunk = test_ids[first:first + BATCH]
         infos = store.fit_inputs(chunk)
@@ -103,7 +139,12 @@ def _jobs(store: Store, test_ids: list[int], method: str) -> Iterator[tuple]:
             t, u, y = samples[test_id]
             info = infos.get(test_id, {})
             input_range, output_range = _ranges(info)
-            yield (test_id, t, u, y, input_range, output_range, method, tuple(info.get("import_flags") or ()))
+            preceding = _preceding(store, test_id, info, previous)
+            previous = _PreviousWindow(info.get("source_hash"), int(info.get("window_index") or 0),
+                                       float(info.get("window_start") or 0.0), float(info.get("period") or 0.0),
+                                       t, u)
+            yield (test_id, t, u, y, input_range, output_range, method,
+                   tuple(info.get("import_flags") or ()), preceding)
 
 
 def fit_store(store: Store, *, refit: bool = False, method: str = "least_squares",

@@ -333,16 +333,19 @@ class Store:
         Keys: ``input_range_low``, ``input_range_high``, ``output_range_low``,
         ``output_range_high``, ``import_flags``, ``move_start_index`` and ``move_start_time`` (s from the
         window start; both None for explicit windows and stores imported before they
-        were kept).
+        were kept), and where the window sits in its file: ``source_hash``,
+        ``window_index``, ``window_start`` (s) and ``period`` (s).
         """
         column_sql = ("t.move_start_index, t.move_start_time" if self._has_column("tests", "move_start_index")
                       else "NULL, NULL")  # a read-only store from an earlier mapper
         rows = self.connection.execute(
             "SELECT t.test_id, c.input_range_low, c.input_range_high, c.output_range_low, "
-            "c.output_range_high, t.import_flags, " + column_sql + " FROM tests t JOIN campaigns c USING (campaign_id) "
+            "c.output_range_high, t.import_flags, " + column_sql + ", t.source_hash, t.window_index, "
+            "t.window_start, t.period FROM tests t JOIN campaigns c USING (campaign_id) "
             "WHERE t.test_id IN (SELECT unnest(?::INTEGER[]))", [list(map(int, test_ids))]).fetchall()
         keys = ("input_range_low", "input_range_high", "output_range_low", "output_range_high",
-                "import_flags", "move_start_index", "move_start_time")
+                "import_flags", "move_start_index", "move_start_time", "source_hash", "window_index",
+                "window_start", "period")
         return {int(r[0]): dict(zip(keys, r[1:])) for r in rows}
 
     def _has_column(self, table: str, column: str) -> bool:
