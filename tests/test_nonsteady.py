@@ -238,3 +238,25 @@ def test_fitting_a_store_simulates_each_window_over_the_record_before_it(tmp_pat
                 held += 1
                 good += abs(row["gain"] / gain - 1) <= 0.05 and abs(row["time_constant"] / tau - 1) <= 0.10
         assert held >= 5 and good >= 0.9 * held, (good, held)
+
+
+def test_an_earlier_move_still_in_its_dead_time_is_simulated_not_mistaken():
+    """The window starts 12 s after an earlier move on a plant with a 20 s dead time, and
+    its own move comes 8 s in: the earlier move's whole response arrives inside the window.
+
+    Truth: the linear plant simulated by scipy's ODE solver (gain 2, time constant 40 s,
+    dead time 20 s). With the preceding record the fit must find it (gain within 2 %,
+    time constant within 5 %, dead time within one sample); fitted from the window alone
+    the earlier response is taken for this move's and the gain is far off.
+    """
+    plant = LinearPlant("linear", dead_time=20.0, gain=2.0, time_constant=40.0)
+    td, ud, yd = simulate(plant, [188.0, 208.0], [50.0, 55.0, 45.0], 600.0)
+    t, u, y = td[::4], ud[::4], yd[::4] + np.random.default_rng(2).normal(0.0, 0.02, td[::4].size)
+    window = t >= 200.0
+    t_w, before_t = t[window] - 200.0, t[~window] - 200.0
+    fit = identify(t_w, u[window], y[window], preceding=(before_t, u[~window]))
+    assert fit.gain == pytest.approx(2.0, rel=0.02)
+    assert fit.time_constant == pytest.approx(40.0, rel=0.05)
+    assert fit.dead_time == pytest.approx(20.0, abs=1.0)
+    alone = identify(t_w, u[window], y[window])
+    assert abs(alone.gain / 2.0 - 1.0) > 0.2, alone.gain

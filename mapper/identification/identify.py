@@ -339,10 +339,18 @@ def _history(preceding, step: StepInfo, t: np.ndarray, u: np.ndarray) -> np.ndar
         )
     if not np.all(np.isfinite(u_before)) or t_before[-1] >= t[0]:
         return np.empty(0)
-    tail = u_before[-max(step.index, MIN_BASELINE_SAMPLES * 3) :]
+    length = max(step.index, MIN_BASELINE_SAMPLES * 3)
+    # reach back over the last move before the window when it lies within a window's
+    # length: its response may still be in its dead time as the window starts, which no
+    # free response can stand for
+    scale = max(float(np.max(np.abs(u_before))), float(abs(u[0])), 1e-300)
+    threshold = max(6.0 * noise_sd(u_before), 1e-9 * scale)
+    moved = np.flatnonzero(np.abs(u_before[-t.size :] - u[0]) > threshold)
+    if moved.size:
+        length = max(length, min(u_before.size, t.size) - int(moved[-1]) + MIN_BASELINE_SAMPLES)
+    tail = u_before[-length:]
     # the input moved in the tail, or between the tail and the window's first sample
     seen = np.append(tail, u[0])
-    scale = max(float(np.max(np.abs(seen))), 1e-300)
     if float(np.ptp(seen)) <= max(6.0 * noise_sd(seen), 1e-9 * scale):
         return np.empty(0)
     return tail

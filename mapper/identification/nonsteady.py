@@ -150,6 +150,11 @@ def least_squares_fopdt_from_state(
     d_max = n_post - MIN_RESPONSE_SAMPLES
     if d_max < 0 or n < 8:
         return None
+    # the plant is taken at rest at the preceding record's first input, not at the level
+    # before this move: a start from rest at the wrong level would be a step no earlier
+    # move made, arriving inside the window one dead time later
+    v0 = float(v[0]) if history > 0 else 0.0
+    v_rest = v - v0
     tau_hi = TAU_MAX_POST_RECORDS * max(n_post, 1)
     if tau_max is not None:
         tau_hi = max(min(tau_hi, tau_max / period), 2.0 * TAU_MIN_SAMPLES)
@@ -162,7 +167,7 @@ def least_squares_fopdt_from_state(
 
     def evaluate(p):
         tau = math.exp(p[0])
-        unit_response_rows(v, tau, float(p[1]), rows)
+        unit_response_rows(v_rest, tau, float(p[1]), rows)
         win = rows[:, history:]
         if free == "ramp":
             f, df = j / n, np.zeros(n)
@@ -179,9 +184,15 @@ def least_squares_fopdt_from_state(
 
     tau0 = max(float(start[0]) / period, TAU_MIN_SAMPLES)
     theta0 = float(np.clip(float(start[1]) / period, 0.0, d_max))
+    thetas = {theta0, 0.5 * theta0}
+    if history > 0:
+        # the fit from rest, read off a window whose start carries an earlier move's
+        # response, can have mistaken that response for this move's: seed longer dead
+        # times too, so the earlier move's arrival is not taken for this one's
+        thetas |= {f * d_max for f in (0.25, 0.5, 0.75)}
     best = None
     for factor in (1.0, 0.5, 2.0, 0.25, 4.0):
-        for theta in {theta0, 0.5 * theta0}:
+        for theta in sorted(thetas):
             p = np.clip([math.log(tau0 * factor), theta], lower, upper)
             phi, _ = evaluate(p)
             rss = _solve_linear(phi, yc)[2]
@@ -192,21 +203,22 @@ def least_squares_fopdt_from_state(
     if not np.all(np.isfinite(coef)) or not math.isfinite(rss):
         return None
     tau_n = math.exp(float(p[0]))
-    c, K, x0 = float(coef[0]) + y_mean, float(coef[1]), float(coef[2])
+    K, x0 = float(coef[1]), float(coef[2])
+    c = float(coef[0]) + y_mean - K * v0  # the output at rest at the level before the move
     at_bound = bool(p[0] >= upper[0] - 1e-3 or p[0] <= lower[0] + 1e-3)
-    jac = np.column_stack((phi[0], phi[1], J[0] / (tau_n * period), J[1] / period, phi[2]))
+    jac = np.column_stack((phi[0], phi[1] + v0, J[0] / (tau_n * period), J[1] / period, phi[2]))
     if free == "ramp":
         start_state = x0  # for the line: its change over the whole window
         jac[:, 4] = phi[2] / n
     else:
-        start_state = x0 + K * _history_amplitude(v, history, tau_n, float(p[1]), n)
+        start_state = x0 + K * _history_amplitude(v, history, tau_n, float(p[1]), n, v0)
     est = Estimate(
         "fopdt", K, tau_n * period, float(p[1]) * period, c, rss, at_bound, True, start_state
     )
     return LeastSquaresFit(est, jac, r, it)
 
 
-def _history_amplitude(v: np.ndarray, history: int, tau: float, theta: float, n: int) -> float:
+def _history_amplitude(v: np.ndarray, history: int, tau: float, theta: float, n: int, v0: float = 0.0) -> float:
     """Free-response amplitude, at the window's first sample, of the preceding input's response.
 
     The response to the input before the window, seen inside the window once its dead
@@ -216,8 +228,9 @@ def _history_amplitude(v: np.ndarray, history: int, tau: float, theta: float, n:
     if history == 0:
         return 0.0
     rows = np.empty((4, v.size))
-    unit_response_rows(v, tau, theta, rows)
-    only_window = v.copy()
+    unit_response_rows(v - v0, tau, theta, rows)  # from rest at ``v0`` ...
+    rows[1] += v0
+    only_window = v.copy()  # ... against the window alone from rest at the move's level
     only_window[:history] = 0.0
     rows_window = np.empty((4, v.size))
     unit_response_rows(only_window, tau, theta, rows_window)
