@@ -17,8 +17,7 @@ import pytest
 from conftest import ENTRY_POINT, write_campaign, write_step_csv
 from typer.testing import CliRunner
 
-from mapper.app import cli
-from mapper.app.cli import app
+from mapper.app.cli import app, common
 
 FIRST = "Tank T-1, spring"
 SECOND = "Tank T-1, autumn"
@@ -302,17 +301,17 @@ class _Terminal(io.StringIO):
 def test_progress_only_on_a_terminal_and_not_when_quiet(monkeypatch):
     terminal = _Terminal()
     monkeypatch.setattr(sys, "stderr", terminal)
-    monkeypatch.setitem(cli._state, "quiet", False)
-    report = cli._progress("fitting")
+    monkeypatch.setitem(common.state, "quiet", False)
+    report = common.progress("fitting")
     assert report is not None
     report(1, 4)
     report(4, 4)
     assert "fitting" in terminal.getvalue() and "4/4" in terminal.getvalue()
-    monkeypatch.setitem(cli._state, "quiet", True)
-    assert cli._progress("fitting") is None
-    monkeypatch.setitem(cli._state, "quiet", False)
+    monkeypatch.setitem(common.state, "quiet", True)
+    assert common.progress("fitting") is None
+    monkeypatch.setitem(common.state, "quiet", False)
     monkeypatch.setattr(sys, "stderr", io.StringIO())  # piped
-    assert cli._progress("fitting") is None
+    assert common.progress("fitting") is None
 
 
 def test_piped_output_has_no_progress_line(one_campaign):

@@ -10,15 +10,15 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from mapper.demo import scenario as demo
-from mapper.demo.scenario import (
+from mapper.demo import exchanger, scenario
+from mapper.demo.exchanger import (
     CLEAN_EXCHANGER,
     FOULED_EXCHANGER,
     linearised_parameters,
     simulate_exchanger,
     valve_for_temperature,
-    write_sample_campaign,
 )
+from mapper.demo.scenario import write_sample_campaign
 
 COMMITTED = Path(__file__).resolve().parents[1] / "sample_campaign"
 CAMPAIGNS = ("exchanger_2026", "exchanger_2024")
@@ -173,7 +173,7 @@ def test_disturbed_test_dips_where_its_twin_does_not(generated):
 def test_steady_state_energy_balance(flow):
     p = CLEAN_EXCHANGER
     start, end, inlet = 30.0, 36.0, 15.0
-    valve = demo.valve_ramp(start, [(10.0, end)], p.valve_rate)
+    valve = exchanger.valve_ramp(start, [(10.0, end)], p.valve_rate)
     t = np.arange(0.0, 2500.0, 5.0)
     run = simulate_exchanger(t, valve, flow=flow, inlet_temperature=inlet, parameters=p)
     # Independent balance: Q = w_steam,max * f(x) * latent heat = w c (T_out - T_in).
@@ -249,7 +249,7 @@ def test_unreachable_temperature_is_refused():
 
 
 def test_command_line_writes_both_campaigns(tmp_path, capsys):
-    assert demo.main(["--write", str(tmp_path), "--seed", "7"]) == 0
+    assert scenario.main(["--write", str(tmp_path), "--seed", "7"]) == 0
     assert "18 tests" in capsys.readouterr().out
     for campaign in CAMPAIGNS:
         assert (tmp_path / campaign / "campaign.toml").is_file()
