@@ -5,8 +5,9 @@ One home for two rules that several layers need (pure numpy, no I/O):
 * :func:`noise_sd`, the one robust noise estimate (median absolute deviation of first
   differences);
 * the one move finder: :func:`find_moves` lists every input move of a record (the store
-  cuts long logs with it), :func:`find_step` describes the main move of one test window
-  with its timing (identification), and :func:`step_time` gives the instant a chart marks.
+  cuts long logs with it); :func:`find_step` takes those moves and describes the main one
+  of a test window with its timing (identification), and :func:`step_time` gives the
+  instant a chart marks.
 
 The thresholds are rules of thumb of the trade ("common practice"), named in
 :mod:`mapper.constants`.
@@ -123,60 +124,43 @@ def find_step(t: np.ndarray, u: np.ndarray) -> StepInfo:
 
     Notes
     -----
-    A moving-window difference of means (``w`` samples after minus ``w`` before)
-    marks the regions where the input changes by more than six times its noise; each
-    region's size is the difference of the medians just outside it. The start and
-    length of the main move come from its 10 % and 90 % crossings, so clean steps and
-    short actuator ramps are both handled.
+    The moves are those of :func:`find_moves`, the one move rule (the store cuts long
+    logs with it too); moves under :data:`~mapper.constants.MOVE_FRACTION` of the biggest
+    are not counted. The main move is the first within 90 % of the biggest; its levels
+    are the medians of the steady stretches on either side, up to the neighbouring
+    moves. Its timing: for a noise-free (set-point) input the exact first changed
+    sample and run of changes; for a measured input the 10 % and 90 % crossings (wider
+    when the noise is large against the move), so clean steps and short actuator ramps
+    are both handled.
     """
     t = np.asarray(t, dtype=float)
     u = np.asarray(u, dtype=float)
     n = u.size
     if n < 6 or not np.all(np.isfinite(u)):
         return _no_step(n, u)
-    scale = max(float(np.max(np.abs(u))), 1e-300)
+    moves = find_moves(u)
+    steps = [m for m in moves if not m.blip]
+    if not steps:
+        return _no_step(n, u)
+    biggest = max(abs(m.after - m.before) for m in steps)
+    keep = [m for m in moves if abs(m.step if m.blip else m.after - m.before) >= MOVE_FRACTION * biggest]
+    j = next(i for i, m in enumerate(keep) if not m.blip and abs(m.after - m.before) >= 0.9 * biggest)
+    main = keep[j]
     dx = np.diff(u)
-    moving = np.flatnonzero(np.abs(dx) > 1e-9 * scale)
-    if 2 * moving.size < dx.size:
-        return _set_point_step(t, u, dx, moving)
-    w = int(np.clip(n // 20, 2, 10))
-    sigma = noise_sd(u)
-    # edge padding lets the window reach moves in the first and last samples
-    padded = np.concatenate([np.full(w, u[0]), u, np.full(w, u[-1])]) - u[0]
-    csum = np.concatenate([[0.0], np.cumsum(padded)])
-    ks = np.arange(0, n - 1)
-    kp = ks + w
-    diff_means = (csum[kp + 1 + w] - 2 * csum[kp + 1] + csum[kp + 1 - w]) / w
-    threshold = max(6.0 * sigma * np.sqrt(2.0 / w), 1e-9 * scale)
-    above = np.abs(diff_means) > threshold
-    if not above.any():
-        return _no_step(n, u)
-    edges = np.flatnonzero(np.diff(np.concatenate([[0], above.astype(int), [0]])))
-    regions = [(ks[s], ks[e - 1]) for s, e in zip(edges[::2], edges[1::2])]
-    moves = []  # (first index, last index, before level, after level)
-    for i, (k0, k1) in enumerate(regions):
-        lo = max(regions[i - 1][1] + 1 if i else 0, k0 - w + 1)
-        hi = min(regions[i + 1][0] + 1 if i + 1 < len(regions) else n, k1 + w + 1)
-        before = median(u[lo : k0 + 1])
-        after = median(u[k1 + 1 : hi]) if hi > k1 + 1 else float(u[-1])
-        moves.append((k0, k1, before, after))
-    sizes = np.array([m[3] - m[2] for m in moves])
-    biggest = float(np.max(np.abs(sizes)))
-    level_noise = 6.0 * sigma
-    keep = [m for m, s in zip(moves, sizes) if abs(s) >= max(MOVE_FRACTION * biggest, level_noise) and s != 0]
-    if not keep:
-        return _no_step(n, u)
-    j = next(i for i, m in enumerate(keep) if abs(m[3] - m[2]) >= 0.9 * biggest)
-    k0, k1 = keep[j][0], keep[j][1]
+    scale = max(float(np.max(np.abs(u))), 1e-300)
+    if 2 * np.count_nonzero(np.abs(dx) > 1e-9 * scale) < dx.size:
+        return _set_point_timing(t, u, dx, main, len(keep))
     # levels from the whole steady stretches on either side of the main move
-    lo = keep[j - 1][1] + 1 if j > 0 else 0
-    hi = keep[j + 1][0] + 1 if j + 1 < len(keep) else n
-    before = median(u[lo : k0 + 1])
-    after = median(u[k1 + 1 : hi])
+    lo = keep[j - 1].end + 1 if j > 0 else 0
+    hi = keep[j + 1].start + 1 if j + 1 < len(keep) else n
+    before = median(u[lo : main.start + 1])
+    after = median(u[main.end : hi])
     size = after - before
     sign = np.sign(size)
+    sigma = noise_sd(u)
     p_lo = float(np.clip(4.0 * sigma / abs(size), 0.1, 0.4))
-    seg = slice(max(k0 - w + 1, 0), min(k1 + w + 1, n))
+    w = int(np.clip(n // 20, 2, 10))
+    seg = slice(max(main.start - w + 1, lo), min(main.end + w + 1, hi))
     frac = (u[seg] - before) * sign / abs(size)
     i_lo = seg.start + int(np.argmax(frac >= p_lo))
     i_hi = seg.start + int(np.argmax(frac >= 1.0 - p_lo))
@@ -206,30 +190,18 @@ def find_step(t: np.ndarray, u: np.ndarray) -> StepInfo:
     )
 
 
-def _set_point_step(t: np.ndarray, u: np.ndarray, dx: np.ndarray, moving: np.ndarray) -> StepInfo:
-    """Exact moves of a noise-free (set-point) input: runs of consecutive changes."""
-    n = u.size
-    if moving.size == 0:
-        return _no_step(n, u)
-    breaks = np.flatnonzero(np.diff(moving) > 1)
-    first = moving[np.concatenate([[0], breaks + 1])]  # last sample before each move
-    last = moving[np.concatenate([breaks, [moving.size - 1]])] + 1  # first sample after
-    sizes = u[last] - u[first]
-    biggest = float(np.max(np.abs(sizes)))
-    keep = np.flatnonzero((np.abs(sizes) >= MOVE_FRACTION * biggest) & (sizes != 0))
-    if keep.size == 0:
-        return _no_step(n, u)
-    j = int(keep[np.argmax(np.abs(sizes[keep]) >= 0.9 * biggest)])
-    k_a, k_b = int(first[j]), int(last[j])
+def _set_point_timing(t: np.ndarray, u: np.ndarray, dx: np.ndarray, main: Move, n_moves: int) -> StepInfo:
+    """Exact timing of the main move of a noise-free (set-point) input: its run of changes."""
+    k_a, k_b = main.start, main.end
     inc = dx[k_a:k_b]
     effective = float(np.dot(t[k_a + 1 : k_b + 1], inc) / inc.sum()) if inc.sum() else float(t[k_a + 1])
     return StepInfo(
         time=float(t[k_a + 1]),
-        size=float(sizes[j]),
+        size=float(u[k_b] - u[k_a]),
         u_before=float(u[k_a]),
         u_after=float(u[k_b]),
         ramp_duration=float(t[k_b] - t[k_a + 1]),
-        n_moves=int(keep.size),
+        n_moves=n_moves,
         index=k_a + 1,
         effective_time=effective,
     )
