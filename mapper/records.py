@@ -7,19 +7,19 @@ infinities become ``None``, tuples and arrays become lists, anything else its te
 from __future__ import annotations
 
 import math
-
-import numpy as np
+import sys
 
 __all__ = ["plain"]
 
 
 def plain(value):
     """A JSON-ready value: numpy scalars to Python, NaN to None, arrays to lists."""
+    np = sys.modules.get("numpy")  # not loaded (a quick command): no value can be a numpy one
     if isinstance(value, dict):
         return {str(k): plain(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple, np.ndarray)):
+    if isinstance(value, (list, tuple)) or (np is not None and isinstance(value, np.ndarray)):
         return [plain(v) for v in value]
-    if isinstance(value, np.generic):
+    if np is not None and isinstance(value, np.generic):
         value = value.item()
     if isinstance(value, float) and not math.isfinite(value):
         return None

@@ -4,25 +4,30 @@ Every command runs inside one :class:`Session`. It opens the store on first use 
 unless the command writes), resolves which campaign is meant (refusing to guess when the
 store holds several and none is named), and caches the campaign rows, the operating map,
 the verdict and the comparisons, so a command that needs the map three times builds it once.
+
+The analysis (and numpy and pandas with it) is loaded by the methods that build from it,
+not by this module: ``mapper params`` reads plain rows (:meth:`Session.param_rows`) and
+starts without any of them.
 """
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import numpy as np
-import pandas as pd
-
-from mapper.analysis.compare import compare_campaigns, compare_directions, compare_repeats
-from mapper.analysis.influence import verdict_influence, with_influence
-from mapper.analysis.opmap import OperatingMap, build_map
-from mapper.analysis.verdict import Verdict, decide
 from mapper.errors import MapperError, NotFoundError, UsageError
-from mapper.store.curation import Curation, upgrade, with_curation
+from mapper.store.curation import Curation, curated_rows, upgrade
 from mapper.store.database import SCHEMA_VERSION, Store
+from mapper.store.queries import param_rows
+
+if TYPE_CHECKING:
+    import pandas as pd
+
+    from mapper.analysis.opmap import OperatingMap
+    from mapper.analysis.verdict import Verdict
 
 AGAINST = {"level": "level", "input": "input_level"}
 
@@ -33,7 +38,7 @@ def finite_or_none(value) -> float | None:
         value = float(value)
     except (TypeError, ValueError):
         return None
-    return value if np.isfinite(value) else None
+    return value if math.isfinite(value) else None
 
 
 def parameter_units(units: dict) -> dict[str, str]:
@@ -52,6 +57,25 @@ def parameter_units(units: dict) -> dict[str, str]:
     if input_unit:
         found["input_step"] = input_unit
     return found
+
+
+def campaign_units(info: dict) -> dict[str, str]:
+    """Input and output units of a campaign row (blank when not given)."""
+    return {"input": info.get("input_unit") or "", "output": info.get("output_unit") or ""}
+
+
+@dataclass(frozen=True)
+class CampaignRows:
+    """Plain rows of one campaign's tests (dicts, as :func:`mapper.store.queries.param_rows`
+    gives them, with the curation columns), its name and units."""
+
+    name: str
+    rows: list[dict]
+    units: dict
+
+    @property
+    def parameter_units(self) -> dict[str, str]:
+        return parameter_units(self.units)
 
 
 @dataclass
@@ -82,8 +106,8 @@ class CampaignData:
 
 def campaign_data(store: Store, info: dict) -> CampaignData:
     """The rows, units and ranges of the campaign described by ``info`` (a campaign row)."""
-    params = with_curation(store.connection, store.params(campaign=info["name"]))
-    units = {"input": info.get("input_unit") or "", "output": info.get("output_unit") or ""}
+    params = store.params(campaign=info["name"])  # with the curation columns
+    units = campaign_units(info)
     ranges = {}
     for side in ("input", "output"):
         low, high = finite_or_none(info.get(f"{side}_range_low")), finite_or_none(info.get(f"{side}_range_high"))
@@ -195,6 +219,21 @@ class Session:
         info = self.campaign_info(name)
         return self._cached(("data", info["name"]), lambda: campaign_data(self.store, info))
 
+    def param_rows(self, name: str | None = None, *, level_min: float | None = None,
+                   level_max: float | None = None, direction: str | None = None) -> CampaignRows:
+        """The named campaign's tests as plain rows (excluded ones included, marked), read
+        without pandas: those at a level from ``level_min`` to ``level_max`` moving in
+        ``direction`` when given (a test without a level is left out by a level bound)."""
+        info = self.campaign_info(name)
+        rows = param_rows(self.store, campaign=info["name"])
+        if level_min is not None:
+            rows = [row for row in rows if row["level"] is not None and row["level"] >= level_min]
+        if level_max is not None:
+            rows = [row for row in rows if row["level"] is not None and row["level"] <= level_max]
+        if direction is not None:
+            rows = [row for row in rows if row["direction"] == direction]
+        return CampaignRows(info["name"], curated_rows(self.store.connection, rows), campaign_units(info))
+
     def fitted_data(self, name: str | None = None) -> CampaignData:
         """As :meth:`data`, refusing a campaign without any fitted test."""
         data = self.data(name)
@@ -214,6 +253,8 @@ class Session:
         With ``influence`` (default) the map also carries the single tests its conclusions
         hang on (:func:`mapper.analysis.influence.with_influence`).
         """
+        from mapper.analysis.influence import with_influence
+        from mapper.analysis.opmap import build_map
         if against not in AGAINST:
             raise MapperError(f"cannot map against '{against}'", hint="use level or input")
         data = self.fitted_data(name)
@@ -222,7 +263,7 @@ class Session:
         if against == "input":
             rows = rows.copy()
             levels = self._cached(("input_levels",), self.store.input_levels)
-            rows["input_level"] = [levels.get(int(i), np.nan) for i in rows["test_id"]]
+            rows["input_level"] = [levels.get(int(i), math.nan) for i in rows["test_id"]]
         opmap = self._cached(("map", data.name, against), lambda: build_map(rows, against=AGAINST[against]))
         if not influence:
             return data, opmap
@@ -232,6 +273,8 @@ class Session:
     def verdict(self, name: str | None = None, *, ms_max: float = 2.0, slowdown_max: float = 2.0,
                 closed_loop_time: float | None = None, rule: str = "simc") -> tuple[CampaignData, Verdict]:
         """Single controller or schedule for a campaign's included tests (decided once)."""
+        from mapper.analysis.influence import verdict_influence
+        from mapper.analysis.verdict import decide
         data, opmap = self.operating_map(name)
 
         def build() -> Verdict:
@@ -248,12 +291,14 @@ class Session:
 
     def comparisons(self, name: str | None = None) -> list[dict]:
         """Repeats and up-against-down comparisons inside one campaign (included tests)."""
+        from mapper.analysis.compare import compare_directions, compare_repeats
         data = self.fitted_data(name)
         return self._cached(("comparisons", data.name), lambda: (
             compare_repeats(data.included) + compare_directions(data.included)))
 
     def compare_two(self, first: str, second: str) -> list[dict]:
         """Campaign ``first`` against ``second``: which parameters moved, where, how much."""
+        from mapper.analysis.compare import compare_campaigns
         a, b = self.fitted_data(first), self.fitted_data(second)
         return self._cached(("compare", a.name, b.name), lambda: compare_campaigns(
             a.included, b.included, names=(a.name, b.name)))

@@ -7,20 +7,18 @@ from __future__ import annotations
 
 import dataclasses
 import getpass
+import math
 import os
 from collections.abc import Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-import numpy as np
-
 from mapper.errors import NotFoundError, UsageError
 from mapper.identification.flags import INFORMS, REJECTS, effect, flag_text
-from mapper.presentation.textplot import sparkline_rows
-from mapper.store.campaign import Campaign
 
 if TYPE_CHECKING:
     from mapper.app.session import Session
+    from mapper.store.campaign import Campaign
 
 _USER_VARIABLES = ("MAPPER_USER", "USER", "LOGNAME", "USERNAME")
 
@@ -108,12 +106,12 @@ def _number(value, unit: str = "", interval=None) -> str:
         value = float(value)
     except (TypeError, ValueError):
         return "-"
-    if not np.isfinite(value):
+    if not math.isfinite(value):
         return "-"
     text = f"{value:.4g}"
     if interval is not None:
-        low, high = (float(v) if v is not None else np.nan for v in interval)
-        if np.isfinite(low) and np.isfinite(high):
+        low, high = (float(v) if v is not None else math.nan for v in interval)
+        if math.isfinite(low) and math.isfinite(high):
             text += f"  (95 % interval {low:.4g} to {high:.4g})"
     return f"{text} {unit}".rstrip() if "(" not in text else text.replace("  (", f" {unit}  (", 1)
 
@@ -139,6 +137,7 @@ def show_test(session: Session, test_id: int, *, png: Path | None = None) -> lis
     and units, every flag explained, the grade and why, and a text plot of data and model.
     With ``png`` the test's chart is also written there."""
     from mapper.app.jobs import _fitted_curve
+    from mapper.presentation.textplot import sparkline_rows
     store = session.store
     row = session.test_row(test_id)
     data = session.data(row["campaign"])

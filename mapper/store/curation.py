@@ -17,14 +17,17 @@ statement binds its values as parameters.
 
 from __future__ import annotations
 
-from collections.abc import Iterator, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from contextlib import contextmanager
 from datetime import UTC, datetime
+from typing import TYPE_CHECKING
 
 import duckdb
-import pandas as pd
 
 from mapper.errors import StoreError
+
+if TYPE_CHECKING:  # the plain rows of `mapper params` are curated without loading pandas
+    import pandas as pd
 
 CURATION_SCHEMA = [
     """CREATE TABLE IF NOT EXISTS exclusions (
@@ -79,18 +82,25 @@ def upgrade(con: duckdb.DuckDBPyConnection, version: int = CURATION_VERSION) -> 
     return True
 
 
+def _stamp(when: datetime | None, layout: str) -> str | None:
+    """A stored UTC timestamp as text (``None`` when there is none)."""
+    return when.strftime(layout) if when is not None else None
+
+
 def _note_line(text: str, by, when) -> str:
-    stamp = pd.Timestamp(when).strftime("%Y-%m-%d %H:%M UTC") if when is not None else ""
+    stamp = _stamp(when, "%Y-%m-%d %H:%M UTC") or ""
     who = f", {by}" if by else ""
     return f"{text} ({stamp}{who})" if stamp or who else text
 
 
-def with_curation(con: duckdb.DuckDBPyConnection, frame: pd.DataFrame) -> pd.DataFrame:
-    """``frame`` (rows of ``test_params``) with the columns ``excluded``, ``exclusion_reason``,
-    ``excluded_by``, ``excluded_at`` (UTC) and ``note``: the campaign file's note, then each
-    later note with its time and author, joined by "; "."""
-    frame = frame.copy()
-    ids = [int(i) for i in frame["test_id"]]
+def curation_columns(con: duckdb.DuckDBPyConnection, test_ids: Iterable[int]) -> dict[str, list]:
+    """The columns ``excluded``, ``exclusion_reason``, ``excluded_by``, ``excluded_at`` (UTC)
+    and ``note`` for ``test_ids``, in their order, as plain lists.
+
+    ``note`` is the campaign file's note, then each later note with its time and author,
+    joined by "; ".
+    """
+    ids = [int(i) for i in test_ids]
     excluded: dict[int, tuple] = {}
     notes: dict[int, list[str]] = {i: [] for i in ids}
     for test_id, note in con.execute(
@@ -101,18 +111,31 @@ def with_curation(con: duckdb.DuckDBPyConnection, frame: pd.DataFrame) -> pd.Dat
         for test_id, reason, by, when in con.execute(
                 "SELECT test_id, reason, excluded_by, excluded_at FROM exclusions "
                 "WHERE test_id IN (SELECT unnest(?::INTEGER[]))", [ids]).fetchall():
-            stamp = pd.Timestamp(when).strftime("%Y-%m-%d %H:%M:%S UTC") if when is not None else None
-            excluded[int(test_id)] = (reason, by, stamp)
+            excluded[int(test_id)] = (reason, by, _stamp(when, "%Y-%m-%d %H:%M:%S UTC"))
         for test_id, text, by, when in con.execute(
                 "SELECT test_id, text, written_by, written_at FROM test_notes "
                 "WHERE test_id IN (SELECT unnest(?::INTEGER[])) ORDER BY written_at, note_id", [ids]).fetchall():
             notes[int(test_id)].append(_note_line(text, by, when))
-    frame["excluded"] = [i in excluded for i in ids]
-    frame["exclusion_reason"] = [excluded.get(i, (None,) * 3)[0] for i in ids]
-    frame["excluded_by"] = [excluded.get(i, (None,) * 3)[1] for i in ids]
-    frame["excluded_at"] = [excluded.get(i, (None,) * 3)[2] for i in ids]
-    frame["note"] = ["; ".join(notes[i]) for i in ids]
+    missing = (None,) * 3
+    return {"excluded": [i in excluded for i in ids],
+            "exclusion_reason": [excluded.get(i, missing)[0] for i in ids],
+            "excluded_by": [excluded.get(i, missing)[1] for i in ids],
+            "excluded_at": [excluded.get(i, missing)[2] for i in ids],
+            "note": ["; ".join(notes[i]) for i in ids]}
+
+
+def with_curation(con: duckdb.DuckDBPyConnection, frame: pd.DataFrame) -> pd.DataFrame:
+    """``frame`` (rows of ``test_params``) with the columns of :func:`curation_columns`."""
+    frame = frame.copy()
+    for name, values in curation_columns(con, frame["test_id"]).items():
+        frame[name] = values
     return frame
+
+
+def curated_rows(con: duckdb.DuckDBPyConnection, rows: Sequence[dict]) -> list[dict]:
+    """Plain rows of ``test_params`` with the columns of :func:`curation_columns` added."""
+    columns = curation_columns(con, [row["test_id"] for row in rows])
+    return [{**row, **{name: values[k] for name, values in columns.items()}} for k, row in enumerate(rows)]
 
 
 @contextmanager

@@ -18,10 +18,12 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 import duckdb
-import numpy as np
 
-if TYPE_CHECKING:  # pandas and pyarrow load on first use: `mapper params` starts without them
+if TYPE_CHECKING:  # numpy, pandas and pyarrow load on first use: `mapper params` starts without them
+    import numpy as np
     import pandas as pd
+
+    from mapper.store.segment import TestWindow
 
 from mapper import __version__
 from mapper.columns import FIT_LIST_COLUMNS, FIT_VALUE_COLUMNS
@@ -35,7 +37,6 @@ from mapper.store.schema import (
     arrow_types,
     quoted,
 )
-from mapper.store.segment import TestWindow
 
 SCHEMA_VERSION = 2  # 2: exclusions and notes after import (store/curation.py)
 DEFAULT_STORE = "mapper.duckdb"
@@ -149,13 +150,12 @@ class Store:
         # Inspect read-only first (a foreign database is never written to); a reader keeps it open.
         probe = _connect(self.path, True, wait)
         try:
-            tables = {r[0] for r in probe.execute(
-                "SELECT table_name FROM information_schema.tables").fetchall()}
-            if "mapper_meta" not in tables:
+            try:  # one query, no catalog listing: a database without mapper's table fails it
+                row = probe.execute("SELECT value FROM mapper_meta WHERE key = 'schema_version'").fetchone()
+            except (duckdb.CatalogException, duckdb.BinderException):
                 raise NotAStoreError(
                     f"{self.path}: a DuckDB database but not a mapper store; it was left untouched",
-                    hint="give --db a new file name for the mapper store")
-            row = probe.execute("SELECT value FROM mapper_meta WHERE key = 'schema_version'").fetchone()
+                    hint="give --db a new file name for the mapper store") from None
             if row is None or int(row[0]) > SCHEMA_VERSION:
                 raise StoreError(f"{self.path}: store schema {row and row[0]} is newer than this "
                                  f"mapper understands ({SCHEMA_VERSION})", hint="upgrade mapper")
@@ -243,6 +243,7 @@ class Store:
         """
         if not windows:
             return []
+        import numpy as np
         import pyarrow as pa
         with self.transaction() as con:
             campaign_id = self.ensure_campaign(con, campaign)
@@ -281,8 +282,9 @@ class Store:
         if name is not None:
             sql += " WHERE c.name = ?"
             args.append(name)
-        frame = self.connection.execute(sql + " ORDER BY c.campaign_id", args).df()
-        return frame.to_dict("records")
+        cursor = self.connection.execute(sql + " ORDER BY c.campaign_id", args)
+        names = [d[0] for d in cursor.description or ()]
+        return [dict(zip(names, row)) for row in cursor.fetchall()]
 
     def test_ids(self, *, unfitted_only: bool = False) -> list[int]:
         sql = "SELECT test_id FROM tests"
@@ -292,6 +294,7 @@ class Store:
 
     def samples(self, test_id: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Time (s), input and output of one test, in time order."""
+        import numpy as np
         arrays = self.connection.execute(
             "SELECT t, u, y FROM samples WHERE test_id = ? ORDER BY sample_index",
             [test_id]).fetchnumpy()
@@ -305,6 +308,7 @@ class Store:
         """Store fit rows (``FitResult.to_row()`` plus ``test_id``) in one transaction."""
         if not rows:
             return
+        import numpy as np
         import pyarrow as pa
         columns: dict[str, pa.Array] = {"test_id": pa.array([int(r["test_id"]) for r in rows], pa.int32())}
         for spec in (*FIT_VALUE_COLUMNS, *FIT_LIST_COLUMNS):
@@ -361,6 +365,7 @@ class Store:
         earlier window gives its samples up to the start of the window after it, so the
         shared plateaus appear once. Empty arrays for a file's first window.
         """
+        import numpy as np
         arrays = self.connection.execute(
             "WITH mine AS (SELECT source_hash, window_index, window_start FROM tests WHERE test_id = ?), "
             "earlier AS (SELECT o.test_id, o.window_index, o.window_start, o.period, "
@@ -377,6 +382,7 @@ class Store:
 
     def samples_many(self, test_ids: Sequence[int]) -> dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]]:
         """Samples of several tests in one query (a batch, never the whole campaign)."""
+        import numpy as np
         arrays = self.connection.execute(
             "SELECT test_id, t, u, y FROM samples WHERE test_id IN (SELECT unnest(?::INTEGER[])) "
             "ORDER BY test_id, sample_index", [list(map(int, test_ids))]).fetchnumpy()

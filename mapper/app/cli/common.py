@@ -15,8 +15,9 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import typer
-from typer.core import TyperArgument, TyperCommand
+from typer.core import TyperArgument, TyperCommand, TyperGroup
 
+from mapper.app.cli import values
 from mapper.errors import MapperError, UsageError
 
 if TYPE_CHECKING:
@@ -35,7 +36,17 @@ def _no_type(ctx) -> None:
     return None
 
 
-class _Command(TyperCommand):
+class _QuickValues:
+    """Option values converted by :mod:`mapper.app.cli.values` (the help option's too)."""
+
+    def get_help_option(self, ctx):
+        option = super().get_help_option(ctx)
+        if option is not None:
+            values.install([option])
+        return option
+
+
+class _Command(_QuickValues, TyperCommand):
     """Help a person reads: arguments shown by their metavar alone, without a Python type."""
 
     def __init__(self, *args, **kwargs) -> None:
@@ -46,9 +57,18 @@ class _Command(TyperCommand):
                 shown = name if param.required else f"[{name}]"
                 param.display_type_rich = _no_type  # type: ignore[method-assign]
                 param._usage_display_name = functools.partial(str, shown)  # type: ignore[method-assign]
+        values.install(self.params)
 
 
-app = typer.Typer(add_completion=False, no_args_is_help=True, pretty_exceptions_show_locals=False,
+class _Group(_QuickValues, TyperGroup):
+    """The application: its global options converted as the commands' are (:mod:`.values`)."""
+
+    def __init__(self, *args, **kwargs) -> None:
+        super().__init__(*args, **kwargs)
+        values.install(self.params)
+
+
+app = typer.Typer(cls=_Group, add_completion=False, no_args_is_help=True, pretty_exceptions_show_locals=False,
                   pretty_exceptions_enable=False,
                   rich_markup_mode=None,  # plain help: loading rich costs more than the rest of start-up
                   help="Step-test campaigns to FOPDT models, an operating map and a "

@@ -37,15 +37,9 @@ def params_command(
 ) -> None:
     """One row per test: level, direction, gain, time constant, dead time with 95 % intervals."""
     with open_session() as session:
-        data = session.data(campaign)
-        frame = data.params
-        if level_min is not None:
-            frame = frame[frame["level"] >= level_min]
-        if level_max is not None:
-            frame = frame[frame["level"] <= level_max]
-        if direction is not None:
-            frame = frame[frame["direction"] == direction.value]
-    rows: list[dict] = frame.to_dict("records")
+        data = session.param_rows(campaign, level_min=level_min, level_max=level_max,
+                                  direction=direction.value if direction is not None else None)
+    rows = data.rows
     units = data.parameter_units
     if format is Format.json:
         rows = [dict(row, units=units) for row in rows]
