@@ -216,7 +216,10 @@ def run_bench(*, tests: int = 100, samples: int = 600, scale: int = 10, workdir:
             "small": {"tests": tests, **e2e_small},
             "large": {"tests": tests * scale, **e2e_large},
             "memory_ratio": e2e_large["peak_rss_mb"] / e2e_small["peak_rss_mb"],
-            "target": f"memory ratio <= 1.5 at {scale}x the tests",
+            # import + fit time at scale x the tests over that at the smaller size
+            "growth_ratio": ((e2e_large["import_seconds"] + e2e_large["fit_seconds"])
+                             / (e2e_small["import_seconds"] + e2e_small["fit_seconds"])),
+            "target": f"memory ratio <= 1.5 and import + fit time <= {1.1 * scale:g}x at {scale}x the tests",
         },
     }
     imp, fit, e2e = figures["import"], figures["fit"], figures["end_to_end"]
@@ -229,6 +232,7 @@ def run_bench(*, tests: int = 100, samples: int = 600, scale: int = 10, workdir:
         "import_plus_fit_faster_than_loop": (fit["large_import_plus_fit_seconds"]
                                              < fit["large_curve_fit_loop_seconds"]),
         "memory_growth": e2e["memory_ratio"] <= 1.5,
+        "time_growth": e2e["growth_ratio"] <= 1.1 * scale,
     }
     figures["scale"] = scale
     figures["start_up"] = start_up_rows(db)
@@ -324,6 +328,9 @@ def bench_lines(figures: dict) -> list[str]:
                      f"peak memory {run['peak_rss_mb']:.0f} MB")
     lines.append(f"peak memory ratio at {scale}x the tests: {e2e['memory_ratio']:.2f} "
                  f"(<= 1.5: {mark('memory_growth')})")
+    if "growth_ratio" in e2e:
+        lines.append(f"import + fit time ratio at {scale}x the tests: {e2e['growth_ratio']:.2f} "
+                     f"(<= {1.1 * scale:g}: {mark('time_growth')})")
     for row in figures.get("processes", []):
         lines.append(f"processes, {row['tests']:6d} tests: mapper import {row['import_seconds']:.2f} s + fit "
                      f"{row['fit_seconds']:.2f} s; notebook loop {row['loop_seconds']:.2f} s; "
