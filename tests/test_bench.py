@@ -29,7 +29,12 @@ def test_bench_tiny_run_reports_every_field(tmp_path):
     assert figures["end_to_end"]["large"]["tests"] == 8
     assert set(figures["targets_met"]) == {"import_throughput", "fit_one_core_speed", "fit_accuracy",
                                            "fit_all_cores_faster", "import_plus_fit_faster_than_loop",
-                                           "memory_growth"}
+                                           "memory_growth", "time_growth"}
+    e2e = figures["end_to_end"]
+    assert e2e["growth_ratio"] == pytest.approx(
+        (e2e["large"]["import_seconds"] + e2e["large"]["fit_seconds"])
+        / (e2e["small"]["import_seconds"] + e2e["small"]["fit_seconds"]))
+    assert "import + fit time ratio at 2x the tests" in result.stdout
     assert all(isinstance(v, bool) for v in figures["targets_met"].values())
     # every synthetic test is clean, so both fitters should recover nearly all of them
     assert figures["fit"]["mapper_within_tolerance"] >= 0.75

@@ -260,3 +260,47 @@ def test_an_earlier_move_still_in_its_dead_time_is_simulated_not_mistaken():
     assert fit.dead_time == pytest.approx(20.0, abs=1.0)
     alone = identify(t_w, u[window], y[window])
     assert abs(alone.gain / 2.0 - 1.0) > 0.2, alone.gain
+
+
+@pytest.mark.parametrize("name, differ", [("linear", False), ("tank", True)])
+def test_record_fit_command_puts_a_logged_file_back_together(tmp_path, name, differ):
+    """``mapper record-fit FILE`` rebuilds the file's record from its stored tests and gives the
+    same whole-record fit as the library on the record itself; the linear plant's moves agree,
+    the tank's (gain and time constant growing as the square root of the level) differ."""
+    import json
+
+    from conftest import run_mapper
+
+    from mapper.identification.record import fit_record
+
+    if name == "linear":
+        plant, noise = LinearPlant("linear", dead_time=5.0, gain=2.0, time_constant=40.0), 0.05
+        times, levels, end = [150.0, 250.0, 350.0, 450.0, 550.0], [20.0, 23.0, 19.0, 22.0, 18.0, 21.0], 650.0
+    else:
+        plant, noise = Tank("tank", dead_time=5.0, area=10.0, c=2.0), 0.02
+        times, levels, end = [300.0, 500.0, 700.0, 900.0], [10.0, 14.0, 18.0, 13.0, 8.0], 1100.0
+    td, ud, yd = simulate(plant, times, levels, end)
+    pick = np.arange(0, td.size, 4)  # every second
+    t, u = td[pick], ud[pick]
+    y = yd[pick] + np.random.default_rng(5).normal(0.0, noise, pick.size)
+    path = tmp_path / "unit_log.csv"
+    np.savetxt(path, np.column_stack([t, u, y]), delimiter=",", header="time,valve,level", comments="", fmt="%.9g")
+    db = tmp_path / "s.duckdb"
+    done = run_mapper("import", path, "--time", "time", "--input", "valve", "--output", "level",
+                      "--campaign", "log", db=db)
+    assert done.returncode == 0, done.stderr
+    shown = run_mapper("record-fit", "unit_log.csv", "--format", "json", db=db)
+    assert shown.returncode == 0, shown.stderr
+    result = json.loads(shown.stdout)
+    assert [row["move"] for row in result["local"]] == list(range(1, len(times) + 1))
+    assert result["homogeneity"]["local_models_differ"] is differ
+    reference = fit_record(t, u, y, [int(np.searchsorted(t, m)) for m in times])
+    assert result["whole_record"]["gain"] == pytest.approx(reference.whole.gain, rel=0.02)
+    assert [row["gain"] for row in result["local"]] == pytest.approx([r.gain for r in reference.local], rel=0.02)
+    if name == "linear":
+        assert result["whole_record"]["gain"] == pytest.approx(2.0, rel=0.03)
+    table = run_mapper("record-fit", "unit_log.csv", db=db)
+    assert table.returncode == 0 and "one model across the record" in table.stdout
+    assert ("differ beyond their intervals" in table.stdout) is differ
+    missing = run_mapper("record-fit", "other.csv", db=db)
+    assert missing.returncode == 1 and "unit_log.csv" in missing.stderr

@@ -21,6 +21,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from mapper.constants import MISFIT_FRACTION
+from mapper.identification.models import first_order_filter
 from mapper.identification.uncertainty import DisturbanceCovariance, _ar1_times
 
 __all__ = ["LoadChange", "find_load_change", "record_wander", "disturbance_flags"]
@@ -101,31 +102,66 @@ def find_load_change(
     if last - first < 3 or not (white_sd > 0 or correlated_sd > 0):
         return None
     candidates = np.unique(np.linspace(first, last, min(MAX_CANDIDATES, last - first)).astype(int))
-    if time_constant_samples is not None and time_constant_samples > 0:
-        response = -np.expm1(-np.arange(n) / time_constant_samples)
-    else:
-        response = np.ones(n)
-    # one row per candidate: the response shifted to start at the candidate, read as a
-    # window of [n zeros, response] (rows are contiguous, so the filters run along them)
-    padded = np.concatenate([np.zeros(n), response])
-    x = np.lib.stride_tricks.sliding_window_view(padded, n)[n - candidates]
     q, _ = np.linalg.qr(J / np.maximum(np.linalg.norm(J, axis=0), 1e-300))
-    x_orthogonal = x - (x @ q) @ q.T
-    energy = np.einsum("ij,ij->i", x_orthogonal, x_orthogonal)
-    ok = energy > 1e-9 * np.einsum("ij,ij->i", x, x)
+    p = q.shape[1]
+    with_correlated = correlated_sd > 0 and correlation_samples > 0
+    rho = math.exp(-1.0 / correlation_samples) if with_correlated else 0.0
+    # the regressor of a change at k is h(i - k) for i >= k; every product with it, for
+    # every k at once, is a tail sum over the record (see _tail_products)
+    columns = [r[:, None], q] + ([_ar1_times(q, rho, axis=0)] if with_correlated else [])
+    products = _tail_products(np.hstack(columns), time_constant_samples)[candidates]
+    x_r, q_x = products[:, 0], products[:, 1:1 + p]
+    h = _change_shape(n, time_constant_samples)
+    x_x = np.cumsum(h * h)[n - 1 - candidates]  # ||x_k||^2: h^2 summed over the n - k samples left
+    energy = x_x - np.einsum("ij,ij->i", q_x, q_x)
+    ok = energy > 1e-9 * x_x
     if not ok.any():
         return None
-    score = x_orthogonal @ r
-    variance = white_sd**2 * energy
-    if correlated_sd > 0 and correlation_samples > 0:
-        a = math.exp(-1.0 / correlation_samples)
-        correlated = _ar1_times(x_orthogonal, a, axis=1)
-        variance = variance + correlated_sd**2 * np.einsum("ij,ij->i", x_orthogonal, correlated)
+    score = x_r - q_x @ (q.T @ r)
+    variance = white_sd**2 * np.where(ok, energy, 0.0)
+    if with_correlated:
+        q_rx = products[:, 1 + p:]
+        x_rx = _correlated_energy(h, rho)[n - 1 - candidates]
+        q_rq = q.T @ columns[2]
+        orthogonal = (x_rx - 2.0 * np.einsum("ij,ij->i", q_x, q_rx)
+                      + np.einsum("ij,jk,ik->i", q_x, q_rq, q_x))
+        variance = variance + correlated_sd**2 * orthogonal
     ok &= variance > 0
     t_statistic = np.where(ok, np.abs(score) / np.sqrt(np.where(ok, variance, 1.0)), 0.0)
     best = int(np.argmax(t_statistic))
-    size = float(score[best] / energy[best]) * float(x[best, -1])
+    size = float(score[best] / energy[best]) * float(h[n - 1 - candidates[best]])
     return LoadChange(int(candidates[best]), size, float(t_statistic[best]))
+
+
+def _change_shape(n: int, time_constant_samples: float | None) -> np.ndarray:
+    """``h(j)``, j = 0..n-1: the output change a unit load change makes j samples on,
+    entering through the process lag (a plain step without one)."""
+    if time_constant_samples is not None and time_constant_samples > 0:
+        return -np.expm1(-np.arange(n) / time_constant_samples)
+    return np.ones(n)
+
+
+def _tail_products(f: np.ndarray, time_constant_samples: float | None) -> np.ndarray:
+    """``sum_{i >= k} h(i - k) f[i]`` for every start ``k`` (rows) and column of ``f``.
+
+    With ``h(j) = 1 - a^j`` it is the tail sum of ``f`` less the backward first-order
+    filter of ``f`` (pole ``a = exp(-1/tau)``), so all starts cost two passes over the
+    record instead of one product per start.
+    """
+    tail = np.cumsum(f[::-1], axis=0)[::-1]
+    if time_constant_samples is None or time_constant_samples <= 0:
+        return tail
+    a = math.exp(-1.0 / time_constant_samples)
+    backward = first_order_filter(np.ascontiguousarray(f[::-1].T), a)[:, ::-1].T
+    return tail - backward
+
+
+def _correlated_energy(h: np.ndarray, rho: float) -> np.ndarray:
+    """``S[L - 1] = sum_{i, j < L} h_i h_j rho^|i - j|`` for every length L: the AR(1)
+    quadratic form of a change regressor with L samples left in the record."""
+    forward = first_order_filter(h, rho)  # sum_{j <= i} h_j rho^(i - j)
+    before = np.concatenate(([0.0], rho * forward[:-1]))  # the same over j < i
+    return np.cumsum(h * h + 2.0 * h * before)
 
 
 def record_wander(correlated_sd: float, correlation_samples: float, samples: int) -> float:

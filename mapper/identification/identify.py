@@ -25,6 +25,7 @@ from mapper.identification import point_methods as est
 from mapper.identification.disturbance import disturbance_flags
 from mapper.identification.flags import flag_text, grade
 from mapper.identification.models import simulate_fopdt, simulate_integrating
+from mapper.identification.nonsteady import preceding_tail
 from mapper.identification.quality import (
     StepInfo,
     assess,
@@ -313,7 +314,7 @@ def identify(
         return _rejected(method, flags + ["no_response"], settings, step, y, import_flags)
     try:
         with np.errstate(all="ignore"):
-            history = _history(preceding, step, t, u) if start_state else np.empty(0)
+            history = preceding_tail(preceding, step.index, t, u) if start_state else np.empty(0)
             return _identify_step(
                 t, u, y, step, method, flags, settings, input_range, output_range, import_flags, history,
                 start_state,
@@ -321,39 +322,6 @@ def identify(
     except (ValueError, ArithmeticError, np.linalg.LinAlgError):
         # numbers beyond what the arithmetic can carry: a rejected fit with a reason, not a crash
         return _rejected(method, flags + ["numerical_failure"], settings, step, y, import_flags)
-
-
-def _history(preceding, step: StepInfo, t: np.ndarray, u: np.ndarray) -> np.ndarray:
-    """The preceding input worth simulating: enough to cover a dead time as long as the
-    baseline, and only when it moved (a flat preceding input adds nothing)."""
-    if preceding is None:
-        return np.empty(0)
-    t_before, u_before = (np.asarray(a, dtype=float) for a in preceding)
-    if t_before.size == 0 and u_before.size == 0:
-        return np.empty(0)
-    if t_before.ndim != 1 or t_before.shape != u_before.shape:
-        raise DataError(
-            f"the preceding record needs times and input of one length, got shapes "
-            f"{t_before.shape}, {u_before.shape}",
-            hint="pass (t, u) of the samples just before the window",
-        )
-    if not np.all(np.isfinite(u_before)) or t_before[-1] >= t[0]:
-        return np.empty(0)
-    length = max(step.index, MIN_BASELINE_SAMPLES * 3)
-    # reach back over the last move before the window when it lies within a window's
-    # length: its response may still be in its dead time as the window starts, which no
-    # free response can stand for
-    scale = max(float(np.max(np.abs(u_before))), float(abs(u[0])), 1e-300)
-    threshold = max(6.0 * noise_sd(u_before), 1e-9 * scale)
-    moved = np.flatnonzero(np.abs(u_before[-t.size :] - u[0]) > threshold)
-    if moved.size:
-        length = max(length, min(u_before.size, t.size) - int(moved[-1]) + MIN_BASELINE_SAMPLES)
-    tail = u_before[-length:]
-    # the input moved in the tail, or between the tail and the window's first sample
-    seen = np.append(tail, u[0])
-    if float(np.ptp(seen)) <= max(6.0 * noise_sd(seen), 1e-9 * scale):
-        return np.empty(0)
-    return tail
 
 
 def _identify_step(

@@ -19,12 +19,14 @@ import math
 
 import numpy as np
 
-from mapper.constants import MIN_RESPONSE_SAMPLES
+from mapper.constants import MIN_BASELINE_SAMPLES, MIN_RESPONSE_SAMPLES
+from mapper.errors import DataError
 from mapper.identification.least_squares import TAU_MAX_POST_RECORDS, TAU_MIN_SAMPLES, LeastSquaresFit
 from mapper.identification.models import split_dead_time, unit_response_rows
 from mapper.identification.point_methods import Estimate
+from mapper.signals import noise_sd
 
-__all__ = ["least_squares_fopdt_from_state", "least_squares_integrating_from_state"]
+__all__ = ["least_squares_fopdt_from_state", "least_squares_integrating_from_state", "preceding_tail"]
 
 _RIDGE = 1e-12  # relative ridge on the linear normal matrix (free response ~ offset when tau is long)
 
@@ -295,3 +297,53 @@ def least_squares_integrating_from_state(
         start_state=float(coef[2]) / period,
     )
     return LeastSquaresFit(est, jac, r, it)
+
+
+def preceding_tail(preceding, step_index: int, t: np.ndarray, u: np.ndarray) -> np.ndarray:
+    """The preceding input worth simulating before a window (empty when there is none).
+
+    Parameters
+    ----------
+    preceding : (ndarray, ndarray) or None
+        Times and input of the record before the window.
+    step_index : int
+        Samples of the window before its own move (its baseline).
+    t, u : ndarray
+        The window's times and input.
+
+    Returns
+    -------
+    ndarray
+        The last samples of the preceding input: enough to cover a dead time as long as
+        the baseline and to reach back over the last earlier move within a window's
+        length; empty when the input did not move there (a flat preceding input adds
+        nothing).
+    """
+    if preceding is None:
+        return np.empty(0)
+    t_before, u_before = (np.asarray(a, dtype=float) for a in preceding)
+    if t_before.size == 0 and u_before.size == 0:
+        return np.empty(0)
+    if t_before.ndim != 1 or t_before.shape != u_before.shape:
+        raise DataError(
+            f"the preceding record needs times and input of one length, got shapes "
+            f"{t_before.shape}, {u_before.shape}",
+            hint="pass (t, u) of the samples just before the window",
+        )
+    if not np.all(np.isfinite(u_before)) or t_before[-1] >= t[0]:
+        return np.empty(0)
+    length = max(step_index, MIN_BASELINE_SAMPLES * 3)
+    # reach back over the last move before the window when it lies within a window's
+    # length: its response may still be in its dead time as the window starts, which no
+    # free response can stand for
+    scale = max(float(np.max(np.abs(u_before))), float(abs(u[0])), 1e-300)
+    threshold = max(6.0 * noise_sd(u_before), 1e-9 * scale)
+    moved = np.flatnonzero(np.abs(u_before[-t.size :] - u[0]) > threshold)
+    if moved.size:
+        length = max(length, min(u_before.size, t.size) - int(moved[-1]) + MIN_BASELINE_SAMPLES)
+    tail = u_before[-length:]
+    # the input moved in the tail, or between the tail and the window's first sample
+    seen = np.append(tail, u[0])
+    if float(np.ptp(seen)) <= max(6.0 * noise_sd(seen), 1e-9 * scale):
+        return np.empty(0)
+    return tail

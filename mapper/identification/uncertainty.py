@@ -288,22 +288,37 @@ def _grid_likelihood_terms(
     mu = 1.0 + a2 - 2.0 * a * np.cos(theta)[None, :]  # (J, n) eigenvalues of the Toeplitz part
     lam = (1.0 - w)[None, :, None] * mu[:, None, :] + ((1.0 - a2) * w[None, :])[:, :, None]  # (J, S, n)
     inverse = 1.0 / lam
-    weights = np.concatenate([inverse, mu[:, None, :] * inverse, 1.0 / mu[:, None, :]], axis=1)
+    # one weighted sum per grid point: mu / lam = (1 - c w / lam) / (1 - w) turns the
+    # mu-weighted sums into unweighted ones less 1/lam-weighted ones, except at w = 1
+    # (lam = c), where the mu-weighted sum is taken itself
+    zero = np.flatnonzero(w == 0.0)
+    extra = [] if zero.size else [1.0 / mu[:, None, :]]  # at rest, for z'Rz
+    weights = np.concatenate([inverse, mu[:, None, :], *extra], axis=1)  # (J, S + 1 (+ 1), n)
     rows, cols = np.triu_indices(m + 2)
     sums = weights.reshape(-1, n) @ (basis[:, rows] * basis[:, cols])
     full = np.empty((sums.shape[0], m + 2, m + 2))
     full[:, rows, cols] = sums
     full[:, cols, rows] = sums
-    full = full.reshape(J, 2 * S + 1, m + 2, m + 2)
-    plain, scaled, at_rest = full[:, :S], full[:, S:2 * S], full[:, 2 * S]
+    full = full.reshape(J, weights.shape[1], m + 2, m + 2)
+    plain, by_mu = full[:, :S], full[:, S]
+    unweighted = basis[:, :m].T @ basis  # z'z and z'e: the transform is orthonormal
+    cw = (1.0 - a2) * w[None, :]  # (J, S)
+    whole = w[None, :] >= 1.0
+    spare = np.where(whole, 1.0, 1.0 - w[None, :])[..., None, None]
+    scaled_zz = (unweighted[:, :m] - cw[..., None, None] * plain[..., :m, :m]) / spare
+    scaled_ze = (unweighted[:, m:] - cw[..., None, None] * plain[..., :m, m:]) / spare
+    at_one = by_mu[:, None, :m, :] / (1.0 - a2)[:, :, None, None]  # mu-weighted over lam = c
+    scaled_zz = np.where(whole[..., None, None], at_one[..., :m], scaled_zz)
+    scaled_ze = np.where(whole[..., None, None], at_one[..., m:], scaled_ze)
+    at_rest = plain[:, int(zero[0])] if zero.size else full[:, S + 1]
     P, C = plain[..., :m, m:], plain[..., m:, m:]  # z' L^-1 e and e' L^-1 e
     gamma = (1.0 - w)[None, :] * a2  # (J, S): weight of the corner correction
     N = np.eye(2) - gamma[..., None, None] * C
     ends = z[[0, -1], :]  # e' z
     a2_ = a2[:, :, None, None]
     # z' B^-1 Q z, with Q z = (Toeplitz part) z - a^2 e e' z
-    right = np.swapaxes(scaled[..., :m, m:], -1, -2) - a2_ * (C @ ends)
-    grams = scaled[..., :m, :m] - a2_ * (P @ ends) + gamma[..., None, None] * (P @ np.linalg.solve(N, right))
+    right = np.swapaxes(scaled_ze, -1, -2) - a2_ * (C @ ends)
+    grams = scaled_zz - a2_ * (P @ ends) + gamma[..., None, None] * (P @ np.linalg.solve(N, right))
     det_n = N[..., 0, 0] * N[..., 1, 1] - N[..., 0, 1] * N[..., 1, 0]
     with np.errstate(invalid="ignore", divide="ignore"):
         log_dets = np.log(lam).sum(axis=-1) + np.log(det_n) - np.log1p(-a2)

@@ -1,4 +1,5 @@
-"""Reading the public ``test_params`` view with optional filters, as plain rows.
+"""Plain-row reads: the public ``test_params`` view with optional filters, and the tests a
+logged file became.
 
 :meth:`mapper.store.database.Store.params` returns the same rows as a DataFrame; the plain
 rows here are read without loading pandas, so ``mapper params`` starts quickly.
@@ -34,3 +35,21 @@ def param_rows(store: Store, *, campaign: str | None = None, level_min: float | 
     names = [d[0] for d in cursor.description or ()]
     flags = names.index("flags")
     return [{**dict(zip(names, row)), "flags": list(row[flags] or [])} for row in cursor.fetchall()]
+
+
+def file_windows(store: Store, campaign: str, file: str) -> list[tuple[int, float, float | None]]:
+    """``(test_id, window_start, move_start_time)`` of every test cut from ``file`` in
+    ``campaign``, in the file's order (seconds; ``move_start_time`` is None for explicit
+    windows)."""
+    rows = store.connection.execute(
+        "SELECT t.test_id, t.window_start, t.move_start_time FROM tests t JOIN campaigns c USING (campaign_id) "
+        "WHERE c.name = ? AND t.file = ? ORDER BY t.window_index", [campaign, file]).fetchall()
+    return [(int(r[0]), float(r[1] or 0.0), None if r[2] is None else float(r[2])) for r in rows]
+
+
+def campaign_files(store: Store, campaign: str) -> list[str]:
+    """The data files of a campaign, by the names they were imported under."""
+    rows = store.connection.execute(
+        "SELECT DISTINCT t.file FROM tests t JOIN campaigns c USING (campaign_id) WHERE c.name = ? ORDER BY 1",
+        [campaign]).fetchall()
+    return [str(r[0]) for r in rows]

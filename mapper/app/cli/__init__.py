@@ -30,6 +30,7 @@ for _name, _function in (
     ("at", results.at_command),
     ("verdict", results.verdict_command),
     ("compare", results.compare_command),
+    ("record-fit", results.record_fit_command),
     ("report", results.report_command),
     ("demo", tools.demo_command),
     ("bench", tools.bench_command),

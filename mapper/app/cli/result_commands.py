@@ -24,7 +24,8 @@ from mapper.app.cli.common import (
 )
 from mapper.presentation.output import format_object, format_records, plain
 
-__all__ = ["params_command", "map_command", "at_command", "verdict_command", "compare_command", "report_command"]
+__all__ = ["params_command", "map_command", "at_command", "verdict_command", "compare_command", "report_command",
+           "record_fit_command"]
 
 
 @guard
@@ -186,3 +187,22 @@ def report_command(
     if outcome.png_files:
         lines.append(f"{len(outcome.png_files)} PNG charts in {png_dir}")
     say(lines)
+
+
+@guard
+def record_fit_command(
+    file: str = typer.Argument(..., metavar="FILE", help="the logged file, by the name it was imported under"),
+    campaign: str | None = campaign_option(),
+    format: Format = format_option(),
+) -> None:
+    """One model across all the moves of a logged file beside each move's own model, and whether
+    the moves' gains differ beyond their intervals (the evidence of nonlinearity)."""
+    from mapper.app.records import record_fit, record_fit_lines, record_fit_rows
+    with open_session() as session:
+        record, result = record_fit(session, file, campaign)
+    if format is Format.table:
+        say(record_fit_lines(record, result))
+    elif format is Format.json:
+        typer.echo(json.dumps(plain(record_fit_rows(record, result)), indent=2))
+    else:
+        typer.echo(format_records(record_fit_rows(record, result)["local"], "csv"))
