@@ -20,6 +20,7 @@ from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
 
 import numpy as np
+from threadpoolctl import threadpool_limits
 
 from mapper.constants import MIN_BASELINE_SAMPLES
 from mapper.identification.identify import ESTIMATORS, identify
@@ -198,7 +199,15 @@ def fit_store(store: Store, *, refit: bool = False, method: str = "least_squares
             batch.clear()
             last_save = time.monotonic()
 
-    jobs = _jobs(store, test_ids, method)
+    with threadpool_limits(limits=1, user_api="blas"):  # small matrices: threads only cost
+        _fit_jobs(_jobs(store, test_ids, method), take, workers, total)
+    if batch:
+        store.save_fits(batch)
+    return summary
+
+
+def _fit_jobs(jobs: Iterator[tuple], take: Callable[[dict], None], workers: int, total: int) -> None:
+    """Fit ``jobs`` here (one worker) or spread over a process pool, handing each row to ``take``."""
     if workers == 1:
         for job in jobs:
             take(fit_one(job))
@@ -221,6 +230,3 @@ def fit_store(store: Store, *, refit: bool = False, method: str = "least_squares
             while pending:
                 for row in pending.popleft().result():
                     take(row)
-    if batch:
-        store.save_fits(batch)
-    return summary
