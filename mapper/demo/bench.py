@@ -156,7 +156,8 @@ def _stage(argv: list[str]) -> None:
             import_sources(store, [folder])
         timings["import_seconds"] = time.perf_counter() - started
     if stage.startswith("fit") or stage == "end_to_end":
-        workers = 1 if stage == "fit_one_core" else None
+        # all cores means the pool on every core, whatever the load (the default counts idle cores)
+        workers = 1 if stage == "fit_one_core" else (os.cpu_count() or 1)
         started = time.perf_counter()
         with Store(db) as store:
             fit_store(store, refit=True, workers=workers if stage != "end_to_end" else None)

@@ -395,11 +395,10 @@ def disturbance_covariance(jacobian: np.ndarray, residuals: np.ndarray) -> Distu
     keep = np.ones((poles.size, len(shares)), dtype=bool)
     keep[1:, 0] = False
     j_grid, k_grid = np.nonzero(keep)
-    share_grid = np.asarray(shares)[k_grid]
-    grid = [(float(CORRELATION_TIME_POINTS) if w == 0.0 else 1.0, float(poles[j]), float(w), int(j))
-            for j, w in zip(j_grid, share_grid)]
+    w_grid = np.asarray(shares)[k_grid]
+    prior_grid = np.where(w_grid == 0.0, float(CORRELATION_TIME_POINTS), 1.0)
     grams, log_dets = grams_grid[keep], log_dets_grid[keep]
-    correlated = [bread @ meat[:p, :p] @ bread for meat in correlated_grid]
+    correlated_stack = bread @ correlated_grid[:, :p, :p] @ bread  # (correlation times, p, p)
     finite = np.isfinite(log_dets) & np.all(np.isfinite(grams), axis=(1, 2))
     if not finite.any():
         return sandwich_covariance_result(J, r)
@@ -412,12 +411,11 @@ def disturbance_covariance(jacobian: np.ndarray, residuals: np.ndarray) -> Distu
     loglik_all = -0.5 * (np.where(finite, log_dets, 0.0) + log_det_a - logdet_gram + white_dof * np.log(s2_all))
     if not usable.any():
         return sandwich_covariance_result(J, r)
-    prior, a_k, w_k, j_k = (np.array(column)[usable] for column in zip(*grid))
-    j_k = j_k.astype(int)
+    prior, w_k, j_k = prior_grid[usable], w_grid[usable], j_grid[usable]
+    a_k = poles[j_k]
     s2_k, loglik_k = s2_all[usable], loglik_all[usable]
     weight = prior * np.exp(loglik_k - loglik_k.max())
     weight /= weight.sum()
-    correlated_stack = np.array(correlated)  # (correlation times, p, p)
     white_part = (s2_k * (1.0 - w_k))[:, None] * np.diag(bread)[None, :]
     correlated_part = (s2_k * w_k)[:, None] * np.einsum("jii->ji", correlated_stack)[j_k]
     variance = white_part + correlated_part
@@ -425,7 +423,7 @@ def disturbance_covariance(jacobian: np.ndarray, residuals: np.ndarray) -> Distu
     per_dof = white_part**2 / white_dof + correlated_part**2 / correlated_dof[:, None]
     mean_v2, mean_v2_dof = weight @ variance**2, weight @ per_dof
     dof = np.divide(mean_v2, mean_v2_dof, out=np.full(p, white_dof), where=mean_v2_dof > 0)
-    per_correlation = np.bincount(j_k, weights=weight * s2_k * w_k, minlength=len(correlated))
+    per_correlation = np.bincount(j_k, weights=weight * s2_k * w_k, minlength=poles.size)
     cov = float(weight @ (s2_k * (1.0 - w_k))) * bread + np.einsum("j,jkl->kl", per_correlation, correlated_stack)
     cov = cov * unscale
     best = int(np.argmax(loglik_k))
