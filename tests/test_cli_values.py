@@ -23,7 +23,8 @@ from mapper.app.cli import app, values
 RAW_VALUES = ["12", "-3", "+4", "007", "0", "1.5", "-0.25", "60.", ".6e2", "1e1", "1E-3", "1e400", " 70",
               "70 ", "1_0", "inf", "-inf", "nan", "abc", "", "1,5", "0x10", "١٢", "up", "down", "UP", "json",
               "table", "least_squares", "simc", "lambda", "min", "report.html", "./a b/c.duckdb", "-", True,
-              False, None, 2.0, 2, Path("x.html")]
+              False, None, 2.0, 2, Path("x.html"), ("1", "2"), ["3"], (), ("4", "x"), ("1.5", "2e1"), ("a.csv", "b"),
+              ("2", "1"), ("0",), ("-1", "5"), ("up",), (Path("p.csv"),)]
 
 
 def _parameters():
@@ -49,8 +50,8 @@ def test_simple_parameters_get_the_quick_conversion():
     assert {("(global)", "db"), ("(global)", "quiet"), ("(global)", "help"), ("params", "level_min"),
             ("params", "direction"), ("params", "format"), ("params", "campaign"), ("report", "out"),
             ("verdict", "ms_max")} <= quick
-    # left to typer: lists, pairs, bounded numbers
-    assert not quick & {("import", "sources"), ("import", "input_range"), ("fit", "workers"), ("fit", "test_ids")}
+    # lists, pairs and bounded numbers too
+    assert {("import", "sources"), ("import", "input_range"), ("fit", "workers"), ("fit", "test_ids")} <= quick
     for name, param, ctx in _parameters():
         if values.quick(param):
             assert isinstance(param.get_runtime_param(), values._QuickParam), (name, param.name)

@@ -10,7 +10,7 @@ import pytest
 from scipy import stats
 from scipy.integrate import solve_ivp
 
-from mapper.analysis.compare import compare_campaigns, compare_directions, compare_repeats
+from mapper.analysis.compare import bonferroni_point, compare_campaigns, compare_directions, compare_repeats
 from mapper.analysis.opmap import build_map, parameter_values
 from mapper.analysis.trends import cluster_levels, fit_trend
 from mapper.errors import DataError, OutOfRangeError
@@ -238,6 +238,17 @@ def test_repeats_consistent_and_too_scattered():
     rows = {r["parameter"]: r for r in compare_repeats(bad)}
     assert not rows["gain"]["consistent"] and rows["gain"]["scatter_ratio"] > 2
     assert "wider than their intervals" in rows["gain"]["sentence"]
+
+
+def test_comparison_tails_are_those_of_scipy_stats():
+    # reference: scipy.stats (normal upper point, chi-square survival function)
+    for count in (1, 3, 12, 40):
+        assert bonferroni_point(count) == pytest.approx(stats.norm.isf(0.025 / count), rel=1e-12)
+    assert bonferroni_point(1) == pytest.approx(1.959964, abs=1e-6)  # two-sided 95 % normal point (tables)
+    for seed, scatter in ((12, 1.0), (12, 6.0)):
+        params = make_params([2.0], gravity_tank, directions=("up",), repeats=6, seed=seed, scatter=scatter)
+        for row in compare_repeats(params):
+            assert row["p_value"] == pytest.approx(stats.chi2.sf(row["chi_square"], row["dof"]), rel=1e-12)
 
 
 def test_up_down_difference_flagged_with_causes():

@@ -14,7 +14,7 @@ import math
 
 import numpy as np
 import pandas as pd
-from scipy import stats
+from scipy import special  # normal and chi-square tails: the values of scipy.stats without its load time
 
 from mapper.analysis.opmap import UNITS, OperatingMap, build_map, format_level, parameter_values, usable_tests
 from mapper.analysis.shapes import pure_error_scatter
@@ -38,7 +38,7 @@ def _fmt(value: float) -> str:
 
 def bonferroni_point(count: int) -> float:
     """Two-sided normal point for ``count`` comparisons at a family-wise 5 % (Bonferroni, 1936)."""
-    return float(stats.norm.isf(0.025 / max(int(count), 1)))
+    return float(-special.ndtri(0.025 / max(int(count), 1)))  # upper normal point: -Phi^-1(p)
 
 
 def _relative_scatter(frame: pd.DataFrame, name: str) -> float:
@@ -128,7 +128,7 @@ def compare_repeats(params: pd.DataFrame, *, against: str = "level", level_toler
             if values.size < 2:
                 continue
             mean, _, chi2, dof = _weighted(values, sigma)
-            p_value = float(stats.chi2.sf(chi2, dof))
+            p_value = float(special.chdtrc(dof, chi2))  # chi-square survival function
             consistent = p_value >= 0.05
             ratio = math.sqrt(chi2 / dof)
             unit = UNITS[name]
@@ -232,7 +232,8 @@ def _side(opmap: OperatingMap, name: str, level: float, tolerance: float, *, any
 
 
 def compare_campaigns(params_a: pd.DataFrame, params_b: pd.DataFrame, *, against: str = "level",
-                      names: tuple[str, str] | None = None) -> list[dict]:
+                      names: tuple[str, str] | None = None,
+                      maps: tuple[OperatingMap, OperatingMap] | None = None) -> list[dict]:
     """Which parameters moved between two campaigns, where, and whether significantly.
 
     Parameters
@@ -243,6 +244,9 @@ def compare_campaigns(params_a: pd.DataFrame, params_b: pd.DataFrame, *, against
         Level column.
     names : pair of str, optional
         Campaign names for the sentences; default from the ``campaign`` column.
+    maps : pair of OperatingMap, optional
+        The maps already built from ``params_a`` and ``params_b`` against ``against``
+        (:func:`mapper.analysis.opmap.build_map`); built here when not given.
 
     Returns
     -------
@@ -267,7 +271,7 @@ def compare_campaigns(params_a: pd.DataFrame, params_b: pd.DataFrame, *, against
     comparison as a whole calls a change on an unchanged plant in at most about 5 % of cases.
     """
     name_a, name_b = names or (_campaign_name(params_a, "A"), _campaign_name(params_b, "B"))
-    map_a, map_b = build_map(params_a, against=against), build_map(params_b, against=against)
+    map_a, map_b = maps or (build_map(params_a, against=against), build_map(params_b, against=against))
     low, high = max(map_a.level_min, map_b.level_min), min(map_a.level_max, map_b.level_max)
     if low > high:
         return [{"parameter": None, "campaign_a": name_a, "campaign_b": name_b, "moved": None, "levels": [],

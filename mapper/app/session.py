@@ -299,9 +299,13 @@ class Session:
     def compare_two(self, first: str, second: str) -> list[dict]:
         """Campaign ``first`` against ``second``: which parameters moved, where, how much."""
         from mapper.analysis.compare import compare_campaigns
+        from mapper.analysis.opmap import build_map
         a, b = self.fitted_data(first), self.fitted_data(second)
+
+        def level_map(data: CampaignData) -> OperatingMap:  # shared with operating_map's cache
+            return self._cached(("map", data.name, "level"), lambda: build_map(data.included, against="level"))
         return self._cached(("compare", a.name, b.name), lambda: compare_campaigns(
-            a.included, b.included, names=(a.name, b.name)))
+            a.included, b.included, names=(a.name, b.name), maps=(level_map(a), level_map(b))))
 
     def test_row(self, test_id: int) -> dict:
         """The params row of one test (with its campaign's curation columns)."""

@@ -50,11 +50,14 @@ def closed_loop_chart(verdict: Mapping[str, Any], *, units: Mapping[str, str] | 
     ms_max = number(verdict.get("ms_max")) or 2.0
     slowdown_max = number(verdict.get("slowdown_max")) or 2.0
     rows = []
+    figures: dict[float, str] = {}  # one line per level, shared by that level's samples
     for r in verdict.get("responses") or []:
         level = float(r["level"])
+        if level not in figures:
+            figures[level] = _figures(verdict, level)
         step = "load step at the plant input" if r["step"] == "load" else "setpoint step"
         rows.append({**r, "panel": f"{level:.4g} {unit_out}".strip(), "step_name": step,
-                     "figures": _figures(verdict, level)})
+                     "figures": figures[level]})
     present = [c for c in CONTROLLERS if any(r["controller"] == c for r in rows)]
     colours = {"single": PALETTE["single"], "schedule": PALETTE["schedule"], "local": PALETTE["trend"]}
     dashes = {"single": [1, 0], "schedule": [6, 3], "local": [2, 2]}
