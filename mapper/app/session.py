@@ -318,8 +318,8 @@ class Session:
         raise NotFoundError(f"no test {test_id} in {self.store.path}")
 
     def test_ids_of(self, name: str | None) -> list[int]:
-        """Every test id of a campaign."""
-        return [int(i) for i in self.data(name).params["test_id"]]
+        """Every test id of a campaign (read without loading its rows)."""
+        return self.store.test_ids(campaign=self.campaign_info(name)["name"])
 
     def known_tests(self, test_ids: Sequence[int]) -> list[int]:
         """``test_ids`` checked against the store (a missing id is an error naming it)."""

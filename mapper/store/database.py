@@ -286,11 +286,17 @@ class Store:
         names = [d[0] for d in cursor.description or ()]
         return [dict(zip(names, row)) for row in cursor.fetchall()]
 
-    def test_ids(self, *, unfitted_only: bool = False) -> list[int]:
-        sql = "SELECT test_id FROM tests"
+    def test_ids(self, *, unfitted_only: bool = False, campaign: str | None = None) -> list[int]:
+        """Test ids in import order: all, those without a fit, and/or those of one campaign."""
+        sql, where, args = "SELECT test_id FROM tests", [], []
         if unfitted_only:
-            sql += " WHERE test_id NOT IN (SELECT test_id FROM fits)"
-        return [int(r[0]) for r in self.connection.execute(sql + " ORDER BY test_id").fetchall()]
+            where.append("test_id NOT IN (SELECT test_id FROM fits)")
+        if campaign is not None:
+            where.append("campaign_id IN (SELECT campaign_id FROM campaigns WHERE name = ?)")
+            args.append(campaign)
+        if where:
+            sql += " WHERE " + " AND ".join(where)
+        return [int(r[0]) for r in self.connection.execute(sql + " ORDER BY test_id", args).fetchall()]
 
     def samples(self, test_id: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Time (s), input and output of one test, in time order."""

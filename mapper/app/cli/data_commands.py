@@ -91,8 +91,8 @@ def fit_command(
         if test_ids:
             chosen, scope = session.known_tests(test_ids), f"{len(test_ids)} named tests"
         else:
-            data = session.data(campaign)
-            chosen, scope = session.test_ids_of(data.name), f"campaign '{data.name}'"
+            name = session.campaign_info(campaign)["name"]
+            chosen, scope = session.test_ids_of(name), f"campaign '{name}'"
         summary = fit_store(session.store, refit=refit, method=method.value, workers=workers,
                             test_ids=chosen, progress=progress("fitting"))
     say([scope] + summary.lines())
