@@ -29,14 +29,26 @@ def test_the_pool_gives_the_fits_one_process_gives(tmp_path):
     np.testing.assert_allclose(pooled["gain"], [t["gain"] for t in tests], rtol=0.03)
 
 
-def test_idle_cores_counts_usable_cores_less_the_load(monkeypatch):
+def test_idle_cores_counts_the_idle_share_of_the_usable_cores(monkeypatch):
+    import mapper.identification.fitting as fitting
+
     usable = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()
-    monkeypatch.setattr(os, "getloadavg", lambda: (0.0, 0.0, 0.0))
-    assert idle_cores() == usable
-    monkeypatch.setattr(os, "getloadavg", lambda: (float(usable) + 3.0, 0.0, 0.0))
-    assert idle_cores() == 1  # every core busy: fit in this process
+    readings = iter([])
+    monkeypatch.setattr(fitting, "_cpu_times", lambda: next(readings))
+    monkeypatch.setattr(fitting.time, "sleep", lambda seconds: None)
+
+    def cores(idle_jiffies: int, total_jiffies: int) -> int:
+        nonlocal readings
+        readings = iter([(1000, 5000), (1000 + idle_jiffies, 5000 + total_jiffies)])
+        return idle_cores()
+
+    assert cores(100, 100) == usable  # all idle
+    assert cores(0, 100) == 1  # every core busy: fit in this process
     if usable >= 2:
-        monkeypatch.setattr(os, "getloadavg", lambda: (usable - 1.2, 0.0, 0.0))
-        assert idle_cores() == 1
-        monkeypatch.setattr(os, "getloadavg", lambda: (usable - 2.0, 0.0, 0.0))
-        assert idle_cores() == 2
+        assert cores(int(100 * 1.4 / usable), 100) == 1  # 1.4 cores idle: less than two
+        assert cores(int(100 * 2.0 / usable), 100) == 2
+    readings = iter([None])
+    assert idle_cores() == usable  # no /proc/stat: every usable core
+    # the real reading on this machine is within range
+    monkeypatch.undo()
+    assert 1 <= idle_cores() <= usable
