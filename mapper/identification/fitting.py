@@ -24,6 +24,7 @@ from threadpoolctl import threadpool_limits
 
 from mapper.constants import MIN_BASELINE_SAMPLES
 from mapper.identification.identify import ESTIMATORS, identify
+from mapper.identification.record import judge_file
 from mapper.store.database import Store
 
 BATCH = 64  # tests read from the store per query
@@ -167,8 +168,39 @@ def _preceding(store: Store, test_id: int, info: dict, previous: _PreviousWindow
     return (t, u) if t.size else None
 
 
-def _jobs(store: Store, test_ids: list[int], method: str) -> Iterator[tuple]:
-    # read in batches: few queries, yet never the whole campaign in memory
+class _ByFile:
+    """Holds the fit rows of one file's windows until the file is done, then judges its moves
+    against each other (:func:`mapper.identification.record.judge_file`) and passes them on.
+
+    Windows of a file have consecutive ids, so a file is done when a row of another arrives.
+    """
+
+    def __init__(self, take: Callable[[dict], None]):
+        self.take = take
+        self.source: str | None = None
+        self.rows: list[dict] = []
+        self.after_move: list[float | None] = []
+
+    def add(self, row: dict, source: str | None, after_move: float | None) -> None:
+        if source != self.source:
+            self.flush()
+            self.source = source
+        if source is None:
+            self.take(row)
+            return
+        self.rows.append(row)
+        self.after_move.append(after_move)
+
+    def flush(self) -> None:
+        for row in judge_file(self.rows, self.after_move) if len(self.rows) > 1 else self.rows:
+            self.take(row)
+        self.source, self.rows, self.after_move = None, [], []
+
+
+def _jobs(store: Store, test_ids: list[int], method: str,
+          files: dict[int, tuple[str | None, float | None]]) -> Iterator[tuple]:
+    # read in batches: few queries, yet never the whole campaign in memory; ``files`` gets
+    # each test's file and how long its window runs after its own move
     previous = _PreviousWindow()
     for first in range(0, len(test_ids), BATCH):
         chunk = test_ids[first:first + BATCH]
@@ -179,6 +211,10 @@ def _jobs(store: Store, test_ids: list[int], method: str) -> Iterator[tuple]:
             info = infos.get(test_id, {})
             input_range, output_range = _ranges(info)
             preceding = _preceding(store, test_id, info, previous)
+            move = info.get("move_start_time")
+            files[test_id] = (info.get("source_hash"),
+                              float(t[-1] - move) + float(info.get("period") or 0.0) if move is not None and t.size
+                              else None)
             previous = _PreviousWindow(info.get("source_hash"), int(info.get("window_index") or 0),
                                        float(info.get("window_start") or 0.0), float(info.get("period") or 0.0),
                                        t, u)
@@ -237,8 +273,16 @@ def fit_store(store: Store, *, refit: bool = False, method: str = "least_squares
             batch.clear()
             last_save = time.monotonic()
 
+    files: dict[int, tuple[str | None, float | None]] = {}
+    by_file = _ByFile(take)
+
+    def arrive(row: dict) -> None:
+        source, after_move = files.pop(int(row["test_id"]), (None, None))
+        by_file.add(row, source, after_move)
+
     with threadpool_limits(limits=1, user_api="blas"):  # small matrices: threads only cost
-        _fit_jobs(_jobs(store, test_ids, method), take, workers, total)
+        _fit_jobs(_jobs(store, test_ids, method, files), arrive, workers, total)
+    by_file.flush()
     if batch:
         store.save_fits(batch)
     return summary

@@ -77,6 +77,19 @@ _ALL = (
         "for a first-order model); no model is kept.",
         REJECTS,
     ),
+    Flag(
+        "response_cut_by_next_move",
+        "The next input move came before this move's response could be seen (less than 0.2 "
+        "time constants of it after the dead time, judged by the other moves of the same "
+        "file); no model is kept.",
+        REJECTS,
+    ),
+    Flag(
+        "gain_sign_against_file",
+        "The gain's sign is opposite to that of the other moves of the same file, beyond its "
+        "interval; a loop's gain keeps its sign over the range, so no model is kept.",
+        REJECTS,
+    ),
     # --- the test can be used, with care ----------------------------------------------------
     Flag("irregular_sampling", "Samples are not evenly spaced; resample before identification.", SUSPECT),
     Flag(

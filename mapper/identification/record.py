@@ -17,13 +17,18 @@ import numpy as np
 from scipy.special import gammaincc
 
 from mapper.constants import Z95
+from mapper.identification.flags import flag_text
 from mapper.identification.identify import FitResult, identify
 from mapper.identification.nonsteady import least_squares_fopdt_from_state
 from mapper.identification.uncertainty import sandwich_covariance, t_quantile
 
-__all__ = ["RecordFit", "WholeModel", "fit_record", "homogeneity_test"]
+__all__ = ["RecordFit", "WholeModel", "fit_record", "homogeneity_test", "judge_file"]
 
 SIGNIFICANCE = 0.05  # local models differ when the homogeneity test rejects at 5 % (common practice)
+# least response after the dead time that shows a move's gain: a rule of thumb, set on the
+# seeded long-dead-time records of tests/test_nonsteady.py
+VISIBLE_TIME_CONSTANTS = 0.2
+MIN_WINDOWS = 3  # fewest windows of a file that say what its moves look like
 
 
 @dataclass(frozen=True)
@@ -100,10 +105,15 @@ def fit_record(
     t, u, y = (np.asarray(a, dtype=float) for a in (t, u, y))
     starts = sorted(int(i) for i in move_starts)
     bounds = [0, *starts, t.size]
-    local = []
-    for i, _ in enumerate(starts):
+    local, after_move = [], []
+    period = float(np.median(np.diff(t))) if t.size > 1 else 0.0
+    for i, start in enumerate(starts):
         lo, hi = bounds[i], bounds[i + 2]
         local.append(identify(t[lo:hi], u[lo:hi], y[lo:hi], preceding=(t[:lo], u[:lo])))
+        after_move.append(float(t[hi - 1] - t[start]) + period)
+    # the moves judged against each other: a response cut short by the next move, a gain
+    # whose sign the other moves contradict
+    local = [FitResult.from_row(row) for row in judge_file([r.to_row() for r in local], after_move)]
     usable = [r for r in local if r.model == "fopdt" and r.gain_lo is not None
               and r.time_constant_lo is not None and r.quality != "rejected"]
     statistic, dof, p_value = 0.0, 0, 1.0
@@ -143,3 +153,76 @@ def _whole(t, u, y, starts, usable) -> WholeModel | None:
         time_constant_hi=e.time_constant * math.exp(z * rel),
         dead_time=e.dead_time, residual_sd=float(np.std(fit.residuals)),
     )  # fmt: skip
+
+
+def judge_file(rows: Sequence[dict], after_move: Sequence[float | None]) -> list[dict]:
+    """The moves of one file judged against each other; rows with a flag added where due.
+
+    Parameters
+    ----------
+    rows : sequence of dict
+        Fit rows (:meth:`FitResult.to_row`) of the file's windows, in the file's order.
+    after_move : sequence of float or None
+        Seconds of each window after its own move started (None: not known).
+
+    Returns
+    -------
+    list of dict
+        The rows, those judged unusable with ``quality = "rejected"`` and a flag and its
+        sentence added:
+
+        - ``response_cut_by_next_move``: the window ends less than ``0.2`` time constants
+          after the dead time, both the median of the file's other usable moves, so its
+          own response was hardly seen (the next move came first, sometimes before the dead
+          time was over);
+        - ``gain_sign_against_file``: its gain's interval lies wholly on the other side of
+          zero from the file's majority (a loop's steady-state gain keeps its sign over its
+          range; common practice: the controller's action is set once).
+
+    Notes
+    -----
+    Only files with at least three windows that carry a first-order model, a known move
+    start and a gain interval clear of zero are judged, and only when one sign holds at
+    least two thirds of them; the medians come from the windows of that sign. A window that
+    is already rejected is left alone.
+    """
+    out = [dict(row) for row in rows]
+    clear = [i for i, row in enumerate(out)
+             if row.get("quality") != "rejected" and row.get("model") == "fopdt"
+             and after_move[i] is not None and _clear_of_zero(row)]
+    if len(clear) < MIN_WINDOWS:
+        return out
+    signs = [math.copysign(1.0, out[i]["gain"]) for i in clear]
+    up, down = signs.count(1.0), signs.count(-1.0)
+    if max(up, down) < 2 * min(up, down):  # no clear majority: the file cannot judge its moves
+        return out
+    majority = 1.0 if up > down else -1.0
+    typical = [i for i, sign in zip(clear, signs) if sign == majority]
+    dead_time = float(np.median([out[i]["dead_time"] for i in typical]))
+    time_constant = float(np.median([out[i]["time_constant"] for i in typical]))
+    for i, row in enumerate(out):
+        if row.get("quality") == "rejected":
+            continue
+        seen = after_move[i]
+        if seen is not None and seen - dead_time < VISIBLE_TIME_CONSTANTS * time_constant:
+            _reject(row, "response_cut_by_next_move",
+                    f"Only {max(seen - dead_time, 0.0):.3g} s of response after a dead time of about "
+                    f"{dead_time:.3g} s (time constant about {time_constant:.3g} s in this file's moves).")
+        elif _clear_of_zero(row) and math.copysign(1.0, row["gain"]) != majority:
+            _reject(row, "gain_sign_against_file",
+                    f"Gain {row['gain']:.3g} against {'positive' if majority > 0 else 'negative'} gains in "
+                    f"{len(typical)} other moves of this file.")
+    return out
+
+
+def _clear_of_zero(row: dict) -> bool:
+    lo, hi, gain = row.get("gain_lo"), row.get("gain_hi"), row.get("gain")
+    return (gain is not None and lo is not None and hi is not None
+            and (lo > 0.0 or hi < 0.0) and row.get("dead_time") is not None
+            and row.get("time_constant") is not None)
+
+
+def _reject(row: dict, flag: str, detail: str) -> None:
+    row["flags"] = [*row.get("flags", []), flag]
+    row["notes"] = [*row.get("notes", []), flag_text(flag) + " " + detail]
+    row["quality"] = "rejected"
