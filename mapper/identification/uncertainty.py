@@ -354,7 +354,8 @@ def disturbance_covariance(jacobian: np.ndarray, residuals: np.ndarray) -> Distu
     time constant soak up leaves small residuals, so the noise parameters are judged by
     restricted maximum likelihood (REML; Patterson & Thompson, 1971; Harville, 1977),
     which accounts for what the fitted parameters absorb, with ``s^2`` profiled out.
-    ``R^-1`` is tridiagonal, so every likelihood costs one tridiagonal factorisation.
+    ``R^-1`` is tridiagonal and its Toeplitz part diagonal in the sine basis, so one sine
+    transform serves every likelihood (:func:`_grid_likelihood_terms`).
 
     One record seldom settles the size of a slow wander, so no single noise model is
     trusted: the covariance is averaged over a grid of ``(c, w)`` (c log-spaced from
