@@ -19,7 +19,7 @@ from typing import TYPE_CHECKING
 
 import duckdb
 
-if TYPE_CHECKING:  # numpy, pandas and pyarrow load on first use: `mapper params` starts without them
+if TYPE_CHECKING:  # numpy and pandas load on first use: `mapper params` starts without them
     import numpy as np
     import pandas as pd
 
@@ -34,7 +34,7 @@ from mapper.store.schema import (
     SCHEMA,
     SQL_TYPES,
     TEST_COLUMN_TYPES,
-    arrow_types,
+    column_array,
     quoted,
 )
 
@@ -244,31 +244,30 @@ class Store:
         if not windows:
             return []
         import numpy as np
-        import pyarrow as pa
         with self.transaction() as con:
             campaign_id = self.ensure_campaign(con, campaign)
             ids = [int(r[0]) for r in con.execute(
                 "SELECT nextval('test_ids') FROM range(?)", [len(windows)]).fetchall()]
             rows = [w.to_row() for w in windows]
-            tests = pa.table({
-                "test_id": pa.array(ids, pa.int32()),
-                "campaign_id": pa.array([campaign_id] * len(windows), pa.int32()),
-                **{name: pa.array([r[name] for r in rows], arrow_types()[kind])
-                   for name, kind in TEST_COLUMN_TYPES.items()},
-            })
-            samples = pa.table({
+            # columns as numpy arrays: DuckDB reads them without pandas or pyarrow
+            tests = {
+                "test_id": np.asarray(ids, dtype=np.int32),
+                "campaign_id": np.full(len(windows), campaign_id, dtype=np.int32),
+                **{name: column_array(kind, [r[name] for r in rows]) for name, kind in TEST_COLUMN_TYPES.items()},
+            }
+            samples = {
                 "test_id": np.concatenate([np.full(len(w.t), i, dtype=np.int32) for i, w in zip(ids, windows)]),
                 "sample_index": np.concatenate([np.arange(len(w.t), dtype=np.int32) for w in windows]),
-                "t": np.concatenate([w.t for w in windows]),
-                "u": np.concatenate([w.u for w in windows]),
-                "y": np.concatenate([w.y for w in windows]),
-            })
-            names = ", ".join(map(quoted, tests.column_names))  # fixed column names, no user text
+                "t": np.concatenate([np.asarray(w.t, dtype=float) for w in windows]),
+                "u": np.concatenate([np.asarray(w.u, dtype=float) for w in windows]),
+                "y": np.concatenate([np.asarray(w.y, dtype=float) for w in windows]),
+            }
+            names = ", ".join(map(quoted, tests))  # fixed column names, no user text
             con.register("incoming_tests", tests)
             con.register("incoming_samples", samples)
             try:
                 con.execute(f"INSERT INTO tests ({names}) SELECT {names} FROM incoming_tests")
-                con.execute("INSERT INTO samples SELECT * FROM incoming_samples")
+                con.execute("INSERT INTO samples SELECT test_id, sample_index, t, u, y FROM incoming_samples")
             finally:
                 con.unregister("incoming_tests")
                 con.unregister("incoming_samples")
@@ -315,19 +314,19 @@ class Store:
         if not rows:
             return
         import numpy as np
-        import pyarrow as pa
-        columns: dict[str, pa.Array] = {"test_id": pa.array([int(r["test_id"]) for r in rows], pa.int32())}
+        # columns as numpy arrays: DuckDB reads them without pandas or pyarrow
+        columns: dict[str, np.ndarray] = {"test_id": np.asarray([int(r["test_id"]) for r in rows], dtype=np.int32)}
         for spec in (*FIT_VALUE_COLUMNS, *FIT_LIST_COLUMNS):
             values = [r.get(spec.name) for r in rows]
             if spec.kind == "number":
                 values = [None if v is None or not np.isfinite(float(v)) else float(v) for v in values]
             elif spec.kind == "text_list":
                 values = [list(v or []) for v in values]
-            columns[spec.name] = pa.array(values, arrow_types()[spec.kind])
-        columns["settings"] = pa.array([json.dumps(r.get("settings") or {}, default=str) for r in rows])
-        columns["tool_version"] = pa.array([__version__] * len(rows))
-        table = pa.table(columns)
-        names = ", ".join(map(quoted, table.column_names))  # registry names, no user text
+            columns[spec.name] = column_array(spec.kind, values)
+        columns["settings"] = column_array("text", [json.dumps(r.get("settings") or {}, default=str) for r in rows])
+        columns["tool_version"] = column_array("text", [__version__] * len(rows))
+        table = columns
+        names = ", ".join(map(quoted, table))  # registry names, no user text
         with self.transaction() as con:
             con.register("incoming_fits", table)
             try:

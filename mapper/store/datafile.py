@@ -15,7 +15,6 @@ from collections.abc import Sequence
 from pathlib import Path
 
 import numpy as np
-import pandas as pd
 
 from mapper.constants import MIN_FILE_SAMPLES
 from mapper.errors import DataError
@@ -37,6 +36,7 @@ def _file_lines(n: int, offset: int) -> np.ndarray:
 
 
 def _to_number(path: Path, column: str, text: np.ndarray, lines: np.ndarray, decimal_comma: bool) -> np.ndarray:
+    import pandas as pd  # text columns only: numeric files are read without pandas
     series = pd.Series(text, dtype=object)
     empty = series.isna() | (series.astype(str).str.strip() == "")
     if empty.any():
@@ -74,16 +74,17 @@ def _parse_time(path: Path, column: str, raw: np.ndarray, kind: str, seconds_per
                 lines: np.ndarray, decimal_comma: bool = False,
                 time_format: str | None = None) -> tuple[np.ndarray, str | None, str | None]:
     """Seconds from the first sample, the first timestamp as text, and its zone."""
+    if any(kind.startswith(t) for t in _NUMERIC_TYPES) and not np.issubdtype(np.asarray(raw).dtype, np.datetime64):
+        values: np.ndarray = np.ma.filled(np.ma.asarray(raw, dtype=float), np.nan)
+        _check_finite(path, column, values, lines)
+        return (values - values[0]) * seconds_per_unit, None, None
+    import pandas as pd  # timestamps and text: numeric time is read without pandas
     if kind.startswith("TIMESTAMP") or np.issubdtype(np.asarray(raw).dtype, np.datetime64):
         stamps = pd.to_datetime(pd.Series(raw), utc=("TIME ZONE" in kind))
         if stamps.isna().any():
             i = int(np.flatnonzero(stamps.isna().to_numpy())[0])
             raise DataError(f"{path}: empty timestamp in column '{column}' at line {lines[i]}",
                             hint="fill or remove the incomplete rows; gaps in a log must not be blank cells")
-    elif any(kind.startswith(t) for t in _NUMERIC_TYPES):
-        values: np.ndarray = np.ma.filled(np.ma.asarray(raw, dtype=float), np.nan)
-        _check_finite(path, column, values, lines)
-        return (values - values[0]) * seconds_per_unit, None, None
     elif time_format:  # text timestamps in the pattern the campaign file names
         text = pd.Series(raw, dtype=object).astype(str).str.strip()
         stamps = pd.to_datetime(text, format=time_format, errors="coerce",
@@ -256,6 +257,7 @@ def _count_rows(path: Path, scanned: ScannedFile) -> int:
 
 def _readable_rows(values: dict, numeric: Sequence[str], time_column: str, decimal_comma: bool) -> np.ndarray:
     """Rows whose numeric cells hold finite numbers and whose time cell is not blank."""
+    import pandas as pd  # only for files with unreadable cells
     keep = np.ones(len(values[time_column]), dtype=bool)
     for column in numeric:
         cleaned = pd.Series(values[column], dtype=object).astype(str).str.strip()
