@@ -283,23 +283,34 @@ def _grid_likelihood_terms(
     edge = math.sqrt(2.0 / (n + 1)) * np.sin(theta)
     basis[:, m] = edge  # the first unit vector in the sine basis
     basis[:, m + 1] = edge * np.where(np.arange(n) % 2, -1.0, 1.0)  # the last one
-    a = poles[:, None]
-    a2 = a * a
-    mu = 1.0 + a2 - 2.0 * a * np.cos(theta)[None, :]  # (J, n) eigenvalues of the Toeplitz part
-    lam = (1.0 - w)[None, :, None] * mu[:, None, :] + ((1.0 - a2) * w[None, :])[:, :, None]  # (J, S, n)
-    inverse = 1.0 / lam
+    a2 = (poles * poles)[:, None]
+    cos = np.cos(theta)
     # one weighted sum per grid point: mu / lam = (1 - c w / lam) / (1 - w) turns the
     # mu-weighted sums into unweighted ones less 1/lam-weighted ones, except at w = 1
-    # (lam = c), where the mu-weighted sum is taken itself
+    # (lam = c), where the mu-weighted sum is taken itself. Pole by pole, so the arrays
+    # stay small enough to be reused by the allocator rather than mapped afresh each call
+    # (fresh pages cost more than the arithmetic).
     zero = np.flatnonzero(w == 0.0)
-    extra = [] if zero.size else [1.0 / mu[:, None, :]]  # at rest, for z'Rz
-    weights = np.concatenate([inverse, mu[:, None, :], *extra], axis=1)  # (J, S + 1 (+ 1), n)
     rows, cols = np.triu_indices(m + 2)
-    sums = weights.reshape(-1, n) @ (basis[:, rows] * basis[:, cols])
-    full = np.empty((sums.shape[0], m + 2, m + 2))
-    full[:, rows, cols] = sums
-    full[:, cols, rows] = sums
-    full = full.reshape(J, weights.shape[1], m + 2, m + 2)
+    products = basis[:, rows] * basis[:, cols]
+    k = S + 1 + (0 if zero.size else 1)  # 1/lam per share, mu, and 1/mu at rest if no w = 0
+    sums = np.empty((J, k, rows.size))
+    log_lam = np.empty((J, S))
+    weights = np.empty((k, n))
+    for j, a in enumerate(poles.tolist()):
+        mu = (1.0 + a * a) - 2.0 * a * cos  # eigenvalues of the Toeplitz part
+        lam = np.multiply.outer(1.0 - w, mu)
+        lam += ((1.0 - a * a) * w)[:, None]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            np.log(lam).sum(axis=1, out=log_lam[j])
+        np.divide(1.0, lam, out=weights[:S])
+        weights[S] = mu
+        if not zero.size:
+            np.divide(1.0, mu, out=weights[S + 1])
+        np.matmul(weights, products, out=sums[j])
+    full = np.empty((J, k, m + 2, m + 2))
+    full[:, :, rows, cols] = sums
+    full[:, :, cols, rows] = sums
     plain, by_mu = full[:, :S], full[:, S]
     unweighted = basis[:, :m].T @ basis  # z'z and z'e: the transform is orthonormal
     cw = (1.0 - a2) * w[None, :]  # (J, S)
@@ -321,7 +332,7 @@ def _grid_likelihood_terms(
     grams = scaled_zz - a2_ * (P @ ends) + gamma[..., None, None] * (P @ np.linalg.solve(N, right))
     det_n = N[..., 0, 0] * N[..., 1, 1] - N[..., 0, 1] * N[..., 1, 0]
     with np.errstate(invalid="ignore", divide="ignore"):
-        log_dets = np.log(lam).sum(axis=-1) + np.log(det_n) - np.log1p(-a2)
+        log_dets = log_lam + np.log(det_n) - np.log1p(-a2)
     # z' Q^-1 z at rest (w = 0, so L = the Toeplitz eigenvalues and the correction is a^2)
     P0, C0 = at_rest[:, :m, m:], at_rest[:, m:, m:]
     N0 = np.eye(2) - a2[:, :, None] * C0
