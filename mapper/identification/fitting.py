@@ -297,18 +297,32 @@ def _fit_jobs(jobs: Iterator[tuple], take: Callable[[dict], None], workers: int,
         # chunks small enough that every process gets several, large enough to amortise
         size = max(1, min(CHUNK, total // (2 * workers)))
         helpers = workers - 1  # the calling process reads, writes and fits too
+        in_flight = IN_FLIGHT_PER_WORKER * helpers
         with ProcessPoolExecutor(max_workers=helpers, mp_context=_pool_context()) as pool:
-            # a bounded queue of pending chunks keeps memory flat however large the campaign
+            # a bounded queue of pending chunks keeps memory flat however large the campaign;
+            # rows are handed on in the order of the tests (a file's windows stay together)
             pending: deque = deque()
             for chunk in _chunks(jobs, size):
-                while pending and pending[0].done():
+                while pending and (pending[0].done() or len(pending) >= 2 * in_flight):
                     for row in pending.popleft().result():
                         take(row)
-                if len(pending) < IN_FLIGHT_PER_WORKER * helpers:
+                if sum(not item.done() for item in pending) < in_flight:
                     pending.append(pool.submit(fit_chunk, chunk))
                 else:  # every helper is busy: fit this chunk here rather than wait
-                    for row in fit_chunk(chunk):
-                        take(row)
+                    pending.append(_Fitted(fit_chunk(chunk)))
             while pending:
                 for row in pending.popleft().result():
                     take(row)
+
+
+class _Fitted:
+    """A chunk fitted in this process, queued behind the ones still with the helpers."""
+
+    def __init__(self, rows: list[dict]):
+        self.rows = rows
+
+    def done(self) -> bool:
+        return True
+
+    def result(self) -> list[dict]:
+        return self.rows
